@@ -1,0 +1,141 @@
+"""Pure state transitions: one accepted fix applied to one vehicle's state.
+
+No I/O. ``advance`` returns the vehicle's next state and what the fix contributes to the
+shared counters; the engine gathers those per batch and hands them to a store.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+from datetime import datetime, timezone
+from functools import lru_cache
+from zoneinfo import ZoneInfo
+
+from featurestore.cells import cell_of
+from featurestore.config import EngineConfig
+from featurestore.geometry import haversine_m, initial_bearing_deg
+from featurestore.schema import Fix
+from featurestore.state import TripState, VehicleState
+
+DAY_MS = 86_400_000
+
+
+@dataclass(frozen=True, slots=True)
+class CompletedTrip:
+    """A trip that ended with a dropoff fix."""
+
+    vehicle_id: str
+    trip_id: str
+    pickup_event_ms: int
+    pickup_arrival_ms: int
+    dropoff_event_ms: int
+    dropoff_arrival_ms: int
+    start_cell: str
+    dest_cell: str
+    origin_route_cell: str
+    dest_route_cell: str
+    pickup_hour: int
+    duration_ms: int
+    distance_m: float
+    fixes: int
+
+
+@dataclass(frozen=True, slots=True)
+class Effect:
+    """What one accepted fix changes outside its vehicle's own state."""
+
+    cell: str
+    bucket: int
+    in_order: bool
+    pickup: bool = False
+    dropoff: bool = False
+    trip_fix: int = 0  # position of this fix in the trip in progress (1 = pickup fix), 0 if none
+    completed: CompletedTrip | None = None
+
+
+@lru_cache(maxsize=16)
+def _zone(name: str) -> ZoneInfo:
+    return ZoneInfo(name)
+
+
+def local_hour(ts_ms: int, tz: str) -> int:
+    """Hour of day (0-23) of an epoch-ms instant in the named IANA time zone."""
+    return datetime.fromtimestamp(ts_ms / 1000, tz=timezone.utc).astimezone(_zone(tz)).hour
+
+
+def pruned_recent(recent: tuple[int, ...], event_ms: int, horizon_ms: int) -> tuple[int, ...]:
+    """The duplicate-detection set after adding ``event_ms``, without entries before horizon."""
+    return tuple(sorted({e for e in recent if e >= horizon_ms} | {event_ms}))
+
+
+def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[VehicleState, Effect]:
+    """Apply an accepted, non-duplicate fix. ``state`` is None for an unknown vehicle."""
+    cell = cell_of(fix.lat, fix.lon, cfg.cell_resolution)
+    bucket = fix.event_ms // cfg.bucket_ms
+    seen_ms = fix.arrival_ms if state is None else max(state.seen_ms, fix.arrival_ms)
+    horizon = seen_ms - cfg.max_delay_ms
+    recent = pruned_recent(() if state is None else state.recent, fix.event_ms, horizon)
+
+    if state is None:
+        new = VehicleState(
+            vehicle_id=fix.vehicle_id, event_ms=fix.event_ms, arrival_ms=fix.arrival_ms,
+            seen_ms=seen_ms, lat=fix.lat, lon=fix.lon, cell=cell, status=fix.status,
+            speed_mps=0.0, bearings=(), recent=recent, trip=None,
+        )
+        return new, Effect(cell, bucket, True)
+
+    if fix.event_ms <= state.event_ms:  # out of order: counts only in the cell's fixes
+        return replace(state, seen_ms=seen_ms, recent=recent), Effect(cell, bucket, False)
+
+    step_m = haversine_m(state.lat, state.lon, fix.lat, fix.lon, cfg.earth_radius_m)
+    speed = step_m / ((fix.event_ms - state.event_ms) / 1000.0)
+    moving = step_m >= cfg.moving_step_m
+    bearing = initial_bearing_deg(state.lat, state.lon, fix.lat, fix.lon) if moving else None
+    bearings = state.bearings
+    if bearing is not None:
+        bearings = (*bearings, bearing)[-cfg.heading_steps:]
+
+    prev, now = state.status, fix.status
+    pickup = prev == "vacant" and now == "occupied"
+    dropoff = prev == "occupied" and now in ("vacant", "offline")
+    trip = state.trip
+    trip_fix = 0
+    completed = None
+    if pickup:
+        trip = TripState(
+            trip_id=fix.trip_id or f"{fix.vehicle_id}:{fix.event_ms}",
+            pickup_event_ms=fix.event_ms, pickup_arrival_ms=fix.arrival_ms,
+            pickup_lat=fix.lat, pickup_lon=fix.lon, start_cell=cell,
+            origin_route_cell=cell_of(fix.lat, fix.lon, cfg.route_resolution),
+            distance_m=0.0, fixes=1, initial_bearings=(),
+        )
+        trip_fix = 1
+    elif dropoff:
+        if trip is not None:
+            completed = CompletedTrip(
+                vehicle_id=fix.vehicle_id, trip_id=trip.trip_id,
+                pickup_event_ms=trip.pickup_event_ms, pickup_arrival_ms=trip.pickup_arrival_ms,
+                dropoff_event_ms=fix.event_ms, dropoff_arrival_ms=fix.arrival_ms,
+                start_cell=trip.start_cell, dest_cell=cell,
+                origin_route_cell=trip.origin_route_cell,
+                dest_route_cell=cell_of(fix.lat, fix.lon, cfg.route_resolution),
+                pickup_hour=local_hour(trip.pickup_event_ms, cfg.city_tz),
+                duration_ms=fix.event_ms - trip.pickup_event_ms,
+                distance_m=trip.distance_m + step_m, fixes=trip.fixes + 1,
+            )
+        trip = None
+    elif trip is not None:
+        fixes = trip.fixes + 1
+        initial = trip.initial_bearings
+        if bearing is not None and fixes <= cfg.trip_initial_fixes:
+            initial = (*initial, bearing)
+        trip = replace(trip, distance_m=trip.distance_m + step_m, fixes=fixes,
+                       initial_bearings=initial)
+        trip_fix = fixes
+
+    new = VehicleState(
+        vehicle_id=fix.vehicle_id, event_ms=fix.event_ms, arrival_ms=fix.arrival_ms,
+        seen_ms=seen_ms, lat=fix.lat, lon=fix.lon, cell=cell, status=now, speed_mps=speed,
+        bearings=bearings, recent=recent, trip=trip,
+    )
+    return new, Effect(cell, bucket, True, pickup, dropoff, trip_fix, completed)
