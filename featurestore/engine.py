@@ -7,7 +7,7 @@ replay both call ``Engine.process`` with decoded fixes.
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 
 from featurestore.config import EngineConfig
@@ -32,6 +32,7 @@ class TripEvent:
 
     vehicle_id: str
     trip_id: str
+    pickup_event_ms: int
     fix_number: int
     arrival_ms: int
 
@@ -40,6 +41,7 @@ class TripEvent:
 class BatchResult:
     """What one batch did: accepted counts, rejections, and trip milestones."""
 
+    consumed: int = 0
     accepted: int = 0
     in_order: int = 0
     out_of_order: int = 0
@@ -54,6 +56,7 @@ class EngineStats:
     """Running totals since the engine started (exposed in reports and metrics)."""
 
     received: int = 0
+    consumed: int = 0
     accepted: int = 0
     in_order: int = 0
     out_of_order: int = 0
@@ -97,19 +100,29 @@ class Engine:
         items: Iterable[Fix | Rejection],
         raws: Mapping[int, bytes] | None = None,
         offsets: Mapping[str, int] | None = None,
+        until: Callable[[TripEvent], bool] | None = None,
     ) -> BatchResult:
-        """Process one batch in order. ``raws`` maps batch index -> raw bytes for dead letters."""
+        """Process one batch in order. ``raws`` maps batch index -> raw bytes for dead letters.
+
+        With ``until``, processing stops once a trip event satisfies it and every following
+        message of the same arrival time is done; ``BatchResult.consumed`` says how many
+        messages were taken (the caller feeds the rest again).
+        """
         cfg = self.config
         batch = list(items)
         result = BatchResult()
         stats = self.stats
-        stats.received += len(batch)
         ids = {f.vehicle_id for f in batch if isinstance(f, Fix)}
         loaded = self.store.load_vehicles(ids)
         current: dict[str, VehicleState | None] = dict(loaded)
         delta = Delta()
         wm = self.store.watermark_ms()
+        stop_at: int | None = None
+        consumed = 0
         for i, item in enumerate(batch):
+            if stop_at is not None and item.arrival_ms is not None and item.arrival_ms > stop_at:
+                break
+            consumed = i + 1
             if isinstance(item, Rejection):
                 result.rejected.append((i, item))
                 stats.rejected[item.reason] += 1
@@ -146,9 +159,11 @@ class Engine:
                 if eff.dropoff:
                     row[2] += 1
                 if eff.trip_fix and new.trip is not None:
-                    result.trip_events.append(
-                        TripEvent(fix.vehicle_id, new.trip.trip_id, eff.trip_fix, fix.arrival_ms)
-                    )
+                    ev = TripEvent(fix.vehicle_id, new.trip.trip_id, new.trip.pickup_event_ms,
+                                   eff.trip_fix, fix.arrival_ms)
+                    result.trip_events.append(ev)
+                    if until is not None and stop_at is None and until(ev):
+                        stop_at = fix.arrival_ms
                 if eff.completed is not None:
                     c = eff.completed
                     key = (c.origin_route_cell, c.dest_route_cell, c.pickup_hour,
@@ -176,6 +191,8 @@ class Engine:
             delta.retention = self.retention(wm)
         if not delta.is_empty() or delta.watermark_ms is not None:
             self.store.apply(delta)
+        result.consumed = consumed
+        stats.received += consumed
         stats.accepted += result.accepted
         stats.in_order += result.in_order
         stats.out_of_order += result.out_of_order

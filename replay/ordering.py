@@ -1,0 +1,91 @@
+"""Arrival order for replay: a bounded-memory external sort of decoded rows.
+
+Rows are ordered by (arrival time, input index, row number): arrival order, ties in file
+order. Sorted runs of at most ``run_rows`` rows are spilled to a temporary directory and
+merged, so memory does not grow with input length. Rows without a usable arrival time are
+passed through first (they are rejections and change no state).
+"""
+
+from __future__ import annotations
+
+import heapq
+import pickle
+import tempfile
+from collections.abc import Iterable, Iterator
+from pathlib import Path
+
+from replay.readers import Item
+
+_BLOCK = 4096
+
+
+def _key(item: Item) -> tuple[int, int, int]:
+    return (item.arrival_ms or 0, item.source, item.row)
+
+
+def _spill(run: list[Item], directory: Path, n: int) -> Path:
+    path = directory / f"run-{n:05d}.pkl"
+    with open(path, "wb") as fh:
+        for i in range(0, len(run), _BLOCK):
+            pickle.dump(run[i:i + _BLOCK], fh, protocol=pickle.HIGHEST_PROTOCOL)
+    return path
+
+
+def _read_run(path: Path) -> Iterator[Item]:
+    with open(path, "rb") as fh:
+        while True:
+            try:
+                block = pickle.load(fh)
+            except EOFError:
+                return
+            yield from block
+
+
+class OrderError(ValueError):
+    """Inputs were streamed as sorted, then a row arrived earlier than rows already replayed."""
+
+
+def arrival_order(items: Iterable[Item], run_rows: int = 250_000, force_sort: bool = False,
+                  temp_dir: str | Path | None = None) -> Iterator[Item]:
+    """Yield ``items`` in (arrival, source, row) order with memory bounded by ``run_rows``.
+
+    While the input is in order, full runs stream straight through. Once disorder appears,
+    runs are sorted and spilled; a row earlier than one already yielded raises OrderError
+    (``force_sort`` spills from the start and never raises).
+    """
+    run: list[Item] = []
+    runs: list[Path] = []
+    streaming = not force_sort
+    yielded_max: tuple[int, int, int] | None = None
+    last: tuple[int, int, int] | None = None
+    with tempfile.TemporaryDirectory(prefix="cellpulse-sort-", dir=temp_dir) as tmp:
+        for item in items:
+            if item.arrival_ms is None:
+                yield item
+                continue
+            k = _key(item)
+            if yielded_max is not None and k < yielded_max:
+                raise OrderError(
+                    f"input #{item.source + 1} row {item.row + 1} arrived "
+                    f"({item.arrival_ms} ms) before rows already replayed; the inputs are not "
+                    "in arrival order: pass --sort to sort them first"
+                )
+            if last is not None and k < last:
+                streaming = False
+            last = k
+            run.append(item)
+            if len(run) >= run_rows:
+                if streaming:
+                    yield from run
+                    yielded_max = k
+                else:
+                    run.sort(key=_key)
+                    runs.append(_spill(run, Path(tmp), len(runs)))
+                run = []
+        run.sort(key=_key)
+        if not runs:
+            yield from run
+            return
+        streams = [_read_run(p) for p in runs]
+        streams.append(iter(run))
+        yield from heapq.merge(*streams, key=_key)

@@ -1,0 +1,84 @@
+"""Writers for training sets and dead letters (Parquet by default, CSV on request)."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from featurestore.catalog import Feature
+
+ARROW_OF = {"int": pa.int64(), "float": pa.float64(), "str": pa.string()}
+TS_TYPE = pa.timestamp("ms", tz="UTC")
+
+
+def feature_fields(features: Sequence[Feature]) -> list[pa.Field]:
+    return [pa.field(f.name, ARROW_OF[f.dtype], nullable=True) for f in features]
+
+
+def output_format(path: str | Path, fmt: str | None) -> str:
+    if fmt:
+        if fmt not in ("parquet", "csv"):
+            raise ValueError(f"unknown output format {fmt!r}; use parquet or csv")
+        return fmt
+    return "csv" if str(path).lower().endswith(".csv") else "parquet"
+
+
+class TableWriter:
+    """Streams rows (dicts) to Parquet or CSV in chunks, with a fixed schema."""
+
+    def __init__(self, path: str | Path, schema: pa.Schema, fmt: str = "parquet",
+                 chunk_rows: int = 8192) -> None:
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.schema = schema
+        self.fmt = fmt
+        self.chunk_rows = chunk_rows
+        self._rows: list[Mapping[str, Any]] = []
+        self.count = 0
+        self._writer: pq.ParquetWriter | pacsv.CSVWriter
+        if fmt == "parquet":
+            self._writer = pq.ParquetWriter(self.path, schema, compression="zstd")
+        else:
+            self._writer = pacsv.CSVWriter(self.path, schema)
+
+    def write(self, row: Mapping[str, Any]) -> None:
+        self._rows.append(row)
+        if len(self._rows) >= self.chunk_rows:
+            self.flush()
+
+    def write_table(self, table: pa.Table) -> None:
+        self.flush()
+        self._writer.write_table(table.cast(self.schema))
+        self.count += table.num_rows
+
+    def flush(self) -> None:
+        if self._rows:
+            self._writer.write_table(pa.Table.from_pylist(self._rows, schema=self.schema))
+            self.count += len(self._rows)
+            self._rows = []
+
+    def close(self) -> None:
+        self.flush()
+        self._writer.close()
+
+    def __enter__(self) -> TableWriter:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+DEAD_LETTER_SCHEMA = pa.schema([
+    pa.field("reason", pa.string()),
+    pa.field("detail", pa.string()),
+    pa.field("source", pa.string()),
+    pa.field("row", pa.int64()),
+    pa.field("vehicle_id", pa.string()),
+    pa.field("arrival_ts", TS_TYPE),
+    pa.field("raw", pa.binary()),
+])
