@@ -171,6 +171,9 @@ def replay_labels(inputs: Sequence[str | Path], labels: str | Path, out: str | P
         raise InputError(f"{labels}: columns {', '.join(clash)} clash with feature names")
     n = table.num_rows
     cols = {k: table.column(k).to_pylist() for k in LABEL_KEYS if k in names}
+    for k in ("cell", "origin_cell", "dest_cell"):  # H3 accepts upper case; state keys are lower
+        if k in cols:
+            cols[k] = [v.lower() if isinstance(v, str) else v for v in cols[k]]
     ts_ms: list[int] = []
     for i, v in enumerate(table.column("ts").to_pylist()):
         try:
