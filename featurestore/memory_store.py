@@ -120,3 +120,15 @@ class MemoryStore:
             "route_days": sum(len(d) for d in self._routes.values()),
             "presence": sum(len(m) for m in self._presence.values()),
         }
+
+    def dump(self) -> dict[str, object]:
+        """A canonical, comparable picture of everything held (tests and parity checks)."""
+        return {
+            "vehicles": {v: s.to_dict() for v, s in sorted(self._vehicles.items())},
+            "cells": {c: {b: list(v) for b, v in sorted(bs.items())}
+                      for c, bs in sorted(self._cells.items()) if bs},
+            "routes": {"|".join(map(str, k)): {d: list(v) for d, v in sorted(ds.items())}
+                       for k, ds in sorted(self._routes.items()) if ds},
+            "presence": {f"{c}|{s}": dict(sorted(m.items()))
+                         for (c, s), m in sorted(self._presence.items()) if m},
+        }

@@ -92,6 +92,8 @@ class ReplaySession:
             a = item.arrival_ms
             if a is not None and self._queries and self._queries[0].as_of_ms < a:
                 self._apply(batch)
+                if progress is not None and batch:
+                    progress(len(batch))
                 batch = []
                 self._answer_until(a)
             batch.append(item)

@@ -219,9 +219,9 @@ def test_bearing_cardinal_directions():
 
 
 def test_bearing_east_off_the_equator_matches_geographiclib():
-    # Off the equator a great circle that starts "east" along a parallel's tangent is the
-    # geodesic; heading to a point due east on the same parallel starts slightly poleward
-    # (less than 90 in the north, more than 90 in the south). geographiclib Inverse azi1.
+    # Off the equator the great circle to a point due east on the same parallel starts
+    # slightly poleward of east: below 90 in the north, above 90 in the south.
+    # Oracle: geographiclib Geodesic.WGS84.Inverse azi1.
     for lat in (DEMO_LAT, 45.0):
         got = initial_bearing_deg(lat, DEMO_LON, lat, DEMO_LON + 0.1)
         ref = WGS84.Inverse(lat, DEMO_LON, lat, DEMO_LON + 0.1)["azi1"] % 360.0
