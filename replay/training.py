@@ -258,7 +258,8 @@ def replay_trips(inputs: Sequence[str | Path], out: str | Path, *,
                  config: EngineConfig | None = None, fmt: str = "parquet",
                  after_fixes: int = 1, assume_delay_s: float | None = None, sort: bool = False,
                  dead_letters: str | Path | None = None, progress: bool = False,
-                 on_batch: Callable[[Any], None] | None = None) -> ReplaySummary:
+                 on_batch: Callable[[Any], None] | None = None,
+                 prepare: Callable[[ReplaySession], None] | None = None) -> ReplaySummary:
     """One row per completed trip: features as of the arrival of its ``after_fixes``-th fix
     (1 = the pickup fix), labels from its dropoff."""
     cfg = config or EngineConfig()
@@ -317,6 +318,8 @@ def replay_trips(inputs: Sequence[str | Path], out: str | Path, *,
     session.on_trip_event = on_event
     session.wants_event = lambda ev: ev.fix_number == after_fixes
     session.on_batch = batch_done
+    if prepare is not None:
+        prepare(session)  # e.g. extra as-of queries of the caller's own
     try:
         _run(session, inputs, assume_delay_s, sort, progress, summary)
     finally:

@@ -1,0 +1,84 @@
+"""One suite for every StateStore implementation (the Redis store joins the parameter list)."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import pytest
+
+from featurestore.memory_store import MemoryStore
+from featurestore.state import TripState, VehicleState
+from featurestore.store import Delta, PresenceMove, ReadRequest, Retention, StateStore
+
+STORES: dict[str, Callable[[], StateStore]] = {"memory": MemoryStore}
+
+
+@pytest.fixture(params=sorted(STORES))
+def store(request: pytest.FixtureRequest) -> StateStore:
+    return STORES[request.param]()
+
+
+def _vehicle(vid: str, ev: int, cell: str = "88c19cbb27fffff", status: str = "vacant",
+             trip: bool = False) -> VehicleState:
+    t = TripState("T1", ev - 5000, ev - 4000, -33.2, -20.6, cell, "87c19cbb2ffffff", 12.5, 2,
+                  (10.0,)) if trip else None
+    return VehicleState(vid, ev, ev + 1000, ev + 1000, -33.2, -20.6, cell, status, 3.25,
+                        (1.5, 359.0), (ev - 15000, ev), t)
+
+
+def test_is_a_state_store(store: StateStore) -> None:
+    assert isinstance(store, StateStore)
+    assert store.watermark_ms() is None and dict(store.offsets()) == {}
+
+
+def test_vehicle_round_trip(store: StateStore) -> None:
+    v = _vehicle("a", 1_000_000, trip=True)
+    store.apply(Delta(vehicles={"a": v}))
+    assert store.load_vehicles(["a", "b"]) == {"a": v}
+    assert VehicleState.from_dict(v.to_dict()) == v
+
+
+def test_counters_add_up_and_ranges_are_inclusive(store: StateStore) -> None:
+    store.apply(Delta(cells={("c1", 10): [1, 0, 0], ("c1", 11): [2, 1, 0]}))
+    store.apply(Delta(cells={("c1", 11): [3, 0, 1], ("c1", 12): [1, 1, 1], ("c2", 11): [5, 5, 5]}))
+    got = store.read(ReadRequest(cells=["c1", "c3"], bucket_lo=11, bucket_hi=12))
+    assert got.cells == {"c1": {11: (5, 1, 1), 12: (1, 1, 1)}}
+
+
+def test_routes_sum_over_day_range(store: StateStore) -> None:
+    store.apply(Delta(routes={("o", "d", 8, 100): [1, 600_000, 600_000 ** 2],
+                              ("o", "d", 8, 101): [2, 1_300_000, 650_000 ** 2 * 2],
+                              ("o", "d", 9, 101): [1, 1, 1]}))
+    got = store.read(ReadRequest(routes=[("o", "d", 8), ("x", "y", 1)], day_lo=101, day_hi=101))
+    assert got.routes == {("o", "d", 8): (2, 1_300_000, 845_000_000_000)}
+    got = store.read(ReadRequest(routes=[("o", "d", 8)], day_lo=80, day_hi=101))
+    assert got.routes[("o", "d", 8)] == (3, 1_900_000, 1_205_000_000_000)
+
+
+def test_presence_moves_between_cells(store: StateStore) -> None:
+    store.apply(Delta(presence={"a": PresenceMove(None, None, "c1", "vacant", 1000),
+                                "b": PresenceMove(None, None, "c1", "occupied", 2000)}))
+    req = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=1000)
+    assert store.read(req).presence == {"c1": (1, 1), "c2": (0, 0)}
+    store.apply(Delta(presence={"a": PresenceMove("c1", "vacant", "c2", "occupied", 3000)}))
+    assert store.read(req).presence == {"c1": (0, 1), "c2": (0, 1)}
+    req2 = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=2001)
+    assert store.read(req2).presence == {"c1": (0, 0), "c2": (0, 1)}
+
+
+def test_watermark_and_offsets_move_with_the_batch(store: StateStore) -> None:
+    store.apply(Delta(cells={("c", 1): [1, 0, 0]}, watermark_ms=5000, offsets={"fixes:0": 11}))
+    store.apply(Delta(watermark_ms=4000, offsets={"fixes:1": 3}))
+    assert store.watermark_ms() == 5000
+    assert dict(store.offsets()) == {"fixes:0": 11, "fixes:1": 3}
+
+
+def test_prune_forgets_only_before_horizons() -> None:
+    s = MemoryStore()
+    s.apply(Delta(cells={("c", 1): [1, 0, 0], ("c", 2): [1, 0, 0]},
+                  vehicles={"a": _vehicle("a", 1000), "b": _vehicle("b", 90_000)},
+                  presence={"a": PresenceMove(None, None, "c", "vacant", 1000)},
+                  routes={("o", "d", 1, 5): [1, 2, 4], ("o", "d", 1, 6): [1, 2, 4]}))
+    s.prune(Retention(bucket_min=2, presence_min_event_ms=1001, vehicle_min_seen_ms=50_000,
+                      route_day_min=6))
+    assert s.sizes() == {"vehicles": 1, "cell_buckets": 1, "route_days": 1, "presence": 0}
