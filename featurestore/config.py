@@ -6,6 +6,7 @@ Values come from defaults, then ``CELLPULSE_*`` environment variables, then flag
 from __future__ import annotations
 
 import dataclasses
+import functools
 import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
@@ -68,27 +69,27 @@ class EngineConfig:
             raise ValueError("invalid engine configuration: " + "; ".join(problems))
 
     # --- derived values, in integer milliseconds -------------------------------------------
-    @property
+    @functools.cached_property
     def bucket_ms(self) -> int:
         return self.bucket_s * 1000
 
-    @property
+    @functools.cached_property
     def max_delay_ms(self) -> int:
         return round(self.max_delay_s * 1000)
 
-    @property
+    @functools.cached_property
     def clock_skew_ms(self) -> int:
         return round(self.clock_skew_s * 1000)
 
-    @property
+    @functools.cached_property
     def now_horizon_ms(self) -> int:
         return round(self.now_horizon_s * 1000)
 
-    @property
+    @functools.cached_property
     def vehicle_ttl_ms(self) -> int:
         return round(self.vehicle_ttl_s * 1000)
 
-    @property
+    @functools.cached_property
     def longest_window_buckets(self) -> int:
         return max(self.windows_min) * 60 // self.bucket_s
 

@@ -1,16 +1,15 @@
 """Per-vehicle state records (the engine's only mutable memory besides counters).
 
-Plain frozen records that serialise to JSON-compatible dicts, so any store can hold them.
+Immutable named tuples (cheap to build on every fix) that serialise to JSON-compatible
+dicts, so any store can hold them.
 """
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 
-@dataclass(frozen=True, slots=True)
-class TripState:
+class TripState(NamedTuple):
     """A trip in progress, from its pickup fix on."""
 
     trip_id: str
@@ -25,7 +24,7 @@ class TripState:
     initial_bearings: tuple[float, ...]
 
     def to_dict(self) -> dict[str, Any]:
-        d = asdict(self)
+        d = self._asdict()
         d["initial_bearings"] = list(self.initial_bearings)
         return d
 
@@ -34,8 +33,7 @@ class TripState:
         return cls(**{**d, "initial_bearings": tuple(d["initial_bearings"])})
 
 
-@dataclass(frozen=True, slots=True)
-class VehicleState:
+class VehicleState(NamedTuple):
     """What the engine knows of one vehicle: its latest in-order fix and recent history."""
 
     vehicle_id: str
@@ -48,11 +46,11 @@ class VehicleState:
     status: str
     speed_mps: float
     bearings: tuple[float, ...]  # last moving-step bearings, oldest first
-    recent: tuple[int, ...]  # event_ms of accepted fixes within the maximum delay
+    recent: tuple[int, ...]  # event_ms of accepted fixes within the maximum delay, sorted
     trip: TripState | None
 
     def to_dict(self) -> dict[str, Any]:
-        d = {f: getattr(self, f) for f in self.__slots__}
+        d = self._asdict()
         d["bearings"] = list(self.bearings)
         d["recent"] = list(self.recent)
         d["trip"] = self.trip.to_dict() if self.trip is not None else None

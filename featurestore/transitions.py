@@ -6,9 +6,10 @@ shared counters; the engine gathers those per batch and hands them to a store.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from functools import lru_cache
+from typing import NamedTuple
 from zoneinfo import ZoneInfo
 
 from featurestore.cells import cell_of
@@ -40,8 +41,7 @@ class CompletedTrip:
     fixes: int
 
 
-@dataclass(frozen=True, slots=True)
-class Effect:
+class Effect(NamedTuple):
     """What one accepted fix changes outside its vehicle's own state."""
 
     cell: str
@@ -64,8 +64,16 @@ def local_hour(ts_ms: int, tz: str) -> int:
 
 
 def pruned_recent(recent: tuple[int, ...], event_ms: int, horizon_ms: int) -> tuple[int, ...]:
-    """The duplicate-detection set after adding ``event_ms``, without entries before horizon."""
-    return tuple(sorted({e for e in recent if e >= horizon_ms} | {event_ms}))
+    """The sorted duplicate-detection set after adding a new ``event_ms``, without entries
+    before the horizon."""
+    i = 0
+    n = len(recent)
+    while i < n and recent[i] < horizon_ms:
+        i += 1
+    kept = recent[i:]
+    if not kept or event_ms > kept[-1]:
+        return (*kept, event_ms)
+    return tuple(sorted((*kept, event_ms)))
 
 
 def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[VehicleState, Effect]:
@@ -85,7 +93,7 @@ def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[Ve
         return new, Effect(cell, bucket, True)
 
     if fix.event_ms <= state.event_ms:  # out of order: counts only in the cell's fixes
-        return replace(state, seen_ms=seen_ms, recent=recent), Effect(cell, bucket, False)
+        return state._replace(seen_ms=seen_ms, recent=recent), Effect(cell, bucket, False)
 
     step_m = haversine_m(state.lat, state.lon, fix.lat, fix.lon, cfg.earth_radius_m)
     speed = step_m / ((fix.event_ms - state.event_ms) / 1000.0)
@@ -129,8 +137,8 @@ def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[Ve
         initial = trip.initial_bearings
         if bearing is not None and fixes <= cfg.trip_initial_fixes:
             initial = (*initial, bearing)
-        trip = replace(trip, distance_m=trip.distance_m + step_m, fixes=fixes,
-                       initial_bearings=initial)
+        trip = trip._replace(distance_m=trip.distance_m + step_m, fixes=fixes,
+                             initial_bearings=initial)
         trip_fix = fixes
 
     new = VehicleState(

@@ -63,7 +63,7 @@ def _coast_x(y: Any) -> Any:
 
 COASTLINE: tuple[tuple[float, float], ...] = tuple(
     (round(float(_to_lat(y)), 7), round(float(_to_lon(x)), 7))
-    for y, x in zip(_COAST_Y, _COAST_X)
+    for y, x in zip(_COAST_Y, _COAST_X, strict=True)
 )
 """The coast as (lat, lon) vertices from south to north; the sea is east of this line."""
 
@@ -366,9 +366,9 @@ class _Track:
 
 def _shifts(rng: np.random.Generator) -> list[tuple[float, float, float | None, float]]:
     """A vehicle's shifts as (start_s, end_s, break_at_s or None, break_len_s) from 00:00."""
-    kind = rng.choice(4, p=[0.22, 0.30, 0.23, 0.25])
-    start_h = (rng.uniform(19.0, 23.0), rng.uniform(4.5, 7.5), rng.uniform(8.0, 11.0),
-               rng.uniform(13.0, 16.5))[kind]
+    kind = rng.choice(4, p=[0.20, 0.38, 0.17, 0.25])
+    start_h = (rng.uniform(19.0, 23.0), rng.uniform(5.0, 7.0), rng.uniform(9.5, 12.0),
+               rng.uniform(14.0, 16.5))[kind]
     length = rng.uniform(8.0, 11.0) * 3600.0
     has_break = rng.random() < 0.75
     brk_frac = rng.uniform(0.4, 0.6)
@@ -376,7 +376,8 @@ def _shifts(rng: np.random.Generator) -> list[tuple[float, float, float | None, 
     starts = [start_h * 3600.0]
     if kind == 0:  # a night shift: the one that began yesterday evening, then tonight's
         starts = [start_h * 3600.0 - 86400.0, start_h * 3600.0]
-    return [(s, s + length, s + brk_frac * length if has_break else None, brk_len)
+    total = length + (brk_len if has_break else 0.0)  # the break does not shorten the work
+    return [(s, s + total, s + brk_frac * length if has_break else None, brk_len)
             for s in starts]
 
 
@@ -458,7 +459,7 @@ def _vehicle_rows(cfg: CityConfig, index: int) -> dict[str, np.ndarray] | None:
         parts.append((tf, fx, fy, fs, dev_v, tp[seg]))
     if not parts:
         return None
-    tf, fx, fy, fs, dev_v, trip = (np.concatenate(c) for c in zip(*parts))
+    tf, fx, fy, fs, dev_v, trip = (np.concatenate(c) for c in zip(*parts, strict=True))
     n = len(tf)
     trip_keep = np.array(trips + [False], dtype=bool)  # index -1 -> False
     trip = np.where((trip >= 0) & trip_keep[trip], trip, -1).astype(np.int32)
@@ -598,11 +599,8 @@ def _broken(bkind: int, aux: float, fields: dict[str, Any]) -> bytes | dict[str,
         f["arrival_ts"] = f.pop("arrival_ts")
     elif name == "garbage_event_ts":
         f["event_ts"] = _GARBAGE_TS[int(aux * len(_GARBAGE_TS))]
-    else:  # bool_for_number
-        key = ("lat", "lon", "speed_mps", "event_ts")[int(aux * 4)]
-        if key == "speed_mps" and key not in f:
-            key = "lat"
-        f[key] = bool(int(aux * 8) % 2)
+    else:  # bool_for_number, in a required field so that the Parquet null is rejected too
+        f[("lat", "lon", "event_ts")[int(aux * 3)]] = bool(int(aux * 6) % 2)
     return f
 
 
@@ -618,7 +616,7 @@ def _format_chunk(c: dict[str, np.ndarray]) -> list[bytes]:
     out: list[bytes] = []
     cols = [c[k].tolist() for k in ("veh", "ev_ms", "arr_ms", "lat", "lon", "status", "speed",
                                     "trip", "bkind", "aux")]
-    for veh, ev, arr, lat, lon, st, sp, tp, bk, aux in zip(*cols):
+    for veh, ev, arr, lat, lon, st, sp, tp, bk, aux in zip(*cols, strict=True):
         if bk >= 0:
             b = _broken(bk, aux, _base_fields(veh, ev, arr, lat, lon, st, sp, tp))
             out.append(b if isinstance(b, bytes) else _json_object(b).encode())

@@ -65,22 +65,36 @@ def run_demo(out_dir: str | Path = "demo-out", seed: int = 7, vehicles: int = 20
     places_for_samples = [_pick(PLACES, k) for k in ("station", "old", "beach", "airport")]
 
     def prepare(session: ReplaySession) -> None:
+        names = list(PLACES)
+        labels: dict[tuple[str, str], str] = {}
+        for a in names:
+            for b in names:
+                key = (cell_of(*PLACES[a], cfg.route_resolution),
+                       cell_of(*PLACES[b], cfg.route_resolution))
+                if a != b and key[0] != key[1]:
+                    labels.setdefault(key, f"{a} -> {b}")
+        pairs = [RouteQuery(o, d) for o, d in labels]
+        fleet = [f"veh-{i:04d}" for i in range(40)]
+        cells = [cell_of(*PLACES[p], cfg.cell_resolution) for p in places_for_samples]
         for h in SAMPLE_HOURS:
             if h > hours:
                 continue
             at = _ms(city.day, h)
-            cells = [cell_of(*PLACES[p], cfg.cell_resolution) for p in places_for_samples]
-            route = RouteQuery(cell_of(*PLACES[places_for_samples[0]], cfg.route_resolution),
-                               cell_of(*PLACES[places_for_samples[3]], cfg.route_resolution))
 
-            def answer(vv: list, cv: list, rv: list, at: int = at, cells: list = cells) -> None:
+            def answer(vv: list, cv: list, rv: list, at: int = at) -> None:
                 for p, c, vec in zip(places_for_samples, cells, cv, strict=True):
                     samples.append(("cell", f"{p} {c}", at, vec))
-                samples.append(("vehicle", "veh-0001", at, vv[0]))
-                samples.append(("route", f"{places_for_samples[0]} -> {places_for_samples[3]}",
-                                at, rv[0]))
+                busy = [(v, vec) for v, vec in zip(fleet, vv, strict=True)
+                        if vec["trip_active"]]
+                if busy:
+                    samples.append(("vehicle", busy[0][0], at, busy[0][1]))
+                ranked = sorted(zip(pairs, rv, strict=True),
+                                key=lambda qv: -int(qv[1]["route_trips"]))
+                for q, vec in ranked[:2]:
+                    if vec["route_trips"]:
+                        samples.append(("route", labels[(q.origin_cell, q.dest_cell)], at, vec))
 
-            session.ask(at, ["veh-0001"], cells, [route], answer)
+            session.ask(at, fleet, cells, pairs, answer)
 
     def count(result: Any) -> None:
         pickups.update(result.pickup_cells)

@@ -1,0 +1,1 @@
+"""Sources, the consumer loop, offsets, dead letters, the tape, and the demo-city generator."""

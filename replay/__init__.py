@@ -1,0 +1,1 @@
+"""Replay of recorded fixes: readers, state rebuild, training sets, pictures."""
