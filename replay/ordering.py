@@ -45,7 +45,7 @@ class OrderError(ValueError):
     """Inputs were streamed as sorted, then a row arrived earlier than rows already replayed."""
 
 
-def arrival_order(items: Iterable[Item], run_rows: int = 250_000, force_sort: bool = False,
+def arrival_order(items: Iterable[Item], run_rows: int = 50_000, force_sort: bool = False,
                   temp_dir: str | Path | None = None) -> Iterator[Item]:
     """Yield ``items`` in (arrival, source, row) order with memory bounded by ``run_rows``.
 
@@ -89,3 +89,15 @@ def arrival_order(items: Iterable[Item], run_rows: int = 250_000, force_sort: bo
         streams = [_read_run(p) for p in runs]
         streams.append(iter(run))
         yield from heapq.merge(*streams, key=_key)
+
+
+def merge_inputs(streams: list[Iterator[Item]]) -> Iterator[Item]:
+    """Merge per-input ordered streams into one (arrival, source, row) order.
+
+    Rows without an arrival time (rejections, which change no state) carry the smallest key
+    and come out as soon as they head their stream.
+    """
+    if len(streams) == 1:
+        yield from streams[0]
+        return
+    yield from heapq.merge(*streams, key=_key)

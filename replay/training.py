@@ -26,7 +26,7 @@ from featurestore.engine import TripEvent
 from featurestore.lookup import RouteQuery
 from featurestore.schema import Rejection, to_epoch_ms
 from featurestore.transitions import CompletedTrip
-from replay.ordering import arrival_order
+from replay.ordering import arrival_order, merge_inputs
 from replay.output import DEAD_LETTER_SCHEMA, TS_TYPE, TableWriter, feature_fields
 from replay.readers import InputError, Item, count_rows, detect_format, iter_file
 from replay.session import ReplaySession
@@ -97,11 +97,10 @@ def _progress(total: int | None, enabled: bool) -> Any:
 
 def _ordered_items(inputs: Sequence[str | Path], assume_delay_s: float | None, sort: bool
                    ) -> Any:
-    def chain() -> Any:
-        for i, p in enumerate(inputs):
-            yield from iter_file(p, i, assume_delay_s)
-
-    return arrival_order(chain(), force_sort=sort)
+    """Each input in arrival order, then merged across inputs (ties: input order, row)."""
+    streams = [arrival_order(iter_file(p, i, assume_delay_s), force_sort=sort)
+               for i, p in enumerate(inputs)]
+    return merge_inputs(streams)
 
 
 def _start(inputs: Sequence[str | Path], config: EngineConfig, dead_letters: str | Path | None

@@ -210,3 +210,17 @@ def test_env_prefix_configures(monkeypatch: pytest.MonkeyPatch,
     names = json.loads(capsys.readouterr().out)["families"]["cell"]
     assert names[:2] == ["cell_pickups_10m", "cell_pickups_30m"]
     assert "cell_ring_pickups_10m" in names
+
+
+def test_several_inputs_merge_by_arrival(tmp_path: Path) -> None:
+    rows = _rows(seed=5)
+    one = _write(rows, tmp_path / "all.parquet")
+    a = _write([r for r in rows if r["vehicle_id"] in ("veh-0", "veh-2")], tmp_path / "a.jsonl")
+    b = _write([r for r in rows if r["vehicle_id"] in ("veh-1", "veh-3")], tmp_path / "b.csv")
+    replay_trips([one], tmp_path / "one.parquet")
+    s = replay_trips([a, b], tmp_path / "two.parquet")
+    assert s.stats["accepted"] == len(rows)
+    key = ["vehicle_id", "pickup_ts"]
+    left = pq.read_table(tmp_path / "one.parquet").to_pandas().sort_values(key)
+    right = pq.read_table(tmp_path / "two.parquet").to_pandas().sort_values(key)
+    assert left.reset_index(drop=True).equals(right.reset_index(drop=True))
