@@ -186,10 +186,13 @@ def row_raw(row: Mapping[str, Any]) -> bytes:
     )
 
 
-def decode_row(row: Mapping[str, Any]) -> Fix | Rejection:
-    """Validate a table row (Parquet/CSV/JSON Lines columns), keeping its raw form on rejection."""
+def decode_row(row: Mapping[str, Any], original: Mapping[str, Any] | None = None
+               ) -> Fix | Rejection:
+    """Validate a table row (Parquet/CSV/JSON Lines columns). On rejection the raw form kept
+    is ``original`` (the row as read, e.g. CSV text cells) or else ``row``, as JSON."""
     result = validate_mapping(row, b"")
     if isinstance(result, Rejection):
-        return Rejection(result.reason, result.detail, row_raw(row), result.vehicle_id,
-                         result.arrival_ms)
+        return Rejection(result.reason, result.detail,
+                         row_raw(original if original is not None else row),
+                         result.vehicle_id, result.arrival_ms)
     return result

@@ -109,7 +109,7 @@ def iter_parquet(path: Path, source: int, delay_ms: int | None, batch_rows: int
     for batch in pf.iter_batches(batch_size=batch_rows):
         for rec in batch.to_pylist():
             yield Item(source, row, decode_row(_with_assumed_arrival(
-                {k: v for k, v in rec.items() if v is not None}, delay_ms)))
+                {k: v for k, v in rec.items() if v is not None}, delay_ms), rec))
             row += 1
 
 
@@ -119,7 +119,8 @@ def iter_csv(path: Path, source: int, delay_ms: int | None) -> Iterator[Item]:
         reader = csv.DictReader(text)
         _check_columns(path, list(reader.fieldnames or []), delay_ms)
         for row, rec in enumerate(reader):
-            yield Item(source, row, decode_row(_with_assumed_arrival(_text_cells(rec), delay_ms)))
+            yield Item(source, row,
+                       decode_row(_with_assumed_arrival(_text_cells(rec), delay_ms), rec))
 
 
 def iter_jsonl(path: Path, source: int, delay_ms: int | None) -> Iterator[Item]:

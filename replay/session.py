@@ -81,9 +81,10 @@ class ReplaySession:
             if self.on_batch is not None:
                 self.on_batch(result)
             batch = batch[result.consumed:]
-            if batch:
+            nxt = next((it.arrival_ms for it in batch if it.arrival_ms is not None), None)
+            if nxt is not None:
                 # Stopped at a trip milestone: answer queries due before the next arrival.
-                self._answer_until(batch[0].arrival_ms)
+                self._answer_until(nxt)
 
     def run(self, items: Iterable[Item], progress: Callable[[int], None] | None = None) -> None:
         """Feed ordered rows through the engine, answering queries as time passes them."""

@@ -224,3 +224,20 @@ def test_several_inputs_merge_by_arrival(tmp_path: Path) -> None:
     left = pq.read_table(tmp_path / "one.parquet").to_pandas().sort_values(key)
     right = pq.read_table(tmp_path / "two.parquet").to_pandas().sort_values(key)
     assert left.reset_index(drop=True).equals(right.reset_index(drop=True))
+
+
+def test_csv_dead_letter_keeps_the_cells_as_written(tmp_path: Path) -> None:
+    src = tmp_path / "in.csv"
+    src.write_text("vehicle_id,event_ts,arrival_ts,lat,lon,status\n"
+                   "veh-1,1780272000,1780272001,-33.2,-20.6,vacant\n"
+                   "veh-1,1780272015,1780272016,north,-20.6,vacant\n"
+                   "veh-1,1780272030,1780272031,-33.2,-20.6,\n")
+    s = replay_trips([src], tmp_path / "t.parquet", dead_letters=tmp_path / "dl.parquet")
+    assert s.stats["rejected"] == {"invalid:lat": 1, "invalid:status": 1}
+    dl = pq.read_table(tmp_path / "dl.parquet").to_pylist()
+    assert [d["row"] for d in dl] == [1, 2]
+    assert json.loads(dl[0]["raw"]) == {"vehicle_id": "veh-1", "event_ts": "1780272015",
+                                        "arrival_ts": "1780272016", "lat": "north",
+                                        "lon": "-20.6", "status": "vacant"}
+    assert json.loads(dl[1]["raw"])["status"] == ""
+    assert "required field is missing" in dl[1]["detail"]
