@@ -38,9 +38,15 @@ MAX_MESSAGE_BYTES = 16_384
 
 def to_epoch_ms(value: Any) -> int:
     """Epoch seconds (int/float), ISO 8601 text with a zone, or an aware datetime -> epoch ms."""
-    if isinstance(value, bool):
+    kind = type(value)
+    if kind is float or kind is int:
+        x = float(value)
+        if not math.isfinite(x):
+            raise ValueError("timestamp must be finite")
+        ms = round(x * 1000.0)
+    elif isinstance(value, bool):
         raise ValueError("a boolean is not a timestamp")
-    if isinstance(value, (int, float)):
+    elif isinstance(value, (int, float)):
         x = float(value)
         if not math.isfinite(x):
             raise ValueError("timestamp must be finite")
@@ -76,11 +82,11 @@ class Fix:
     """One validated position message."""
 
     vehicle_id: Ident
-    event_ms: EpochMs
+    event_ms: Annotated[EpochMs, Field(validation_alias="event_ts")]
     lat: Annotated[float, Field(ge=-90.0, le=90.0, allow_inf_nan=False, strict=True)]
     lon: Annotated[float, Field(ge=-180.0, le=180.0, allow_inf_nan=False, strict=True)]
     status: Status
-    arrival_ms: EpochMs
+    arrival_ms: Annotated[EpochMs, Field(validation_alias="arrival_ts")]
     speed_mps: Annotated[float, Field(ge=0.0, allow_inf_nan=False, strict=True)] | None = None
     trip_id: Ident | None = None
 
@@ -113,25 +119,12 @@ class Rejection:
 
 
 _FIX = TypeAdapter(Fix)
-_FIELD_OF = {"event_ms": "event_ts", "arrival_ms": "arrival_ts"}
-
-
-def _rename(d: Mapping[str, Any]) -> dict[str, Any]:
-    out = {k: d[k] for k in ("vehicle_id", "lat", "lon", "status") if k in d}
-    if "event_ts" in d:
-        out["event_ms"] = d["event_ts"]
-    if "arrival_ts" in d:
-        out["arrival_ms"] = d["arrival_ts"]
-    for k in ("speed_mps", "trip_id"):
-        if d.get(k) is not None:
-            out[k] = d[k]
-    return out
 
 
 def _reject_validation(exc: ValidationError, raw: bytes, d: Mapping[str, Any]) -> Rejection:
     err = exc.errors()[0]
     loc = err.get("loc") or ("?",)
-    name = _FIELD_OF.get(str(loc[0]), str(loc[0]))
+    name = str(loc[0])
     detail = f"{name}: {err.get('msg', 'invalid')}"
     if err.get("type") == "missing":
         detail = f"{name}: required field is missing"
@@ -155,7 +148,7 @@ def _safe_ms(value: Any) -> int | None:
 def validate_mapping(d: Mapping[str, Any], raw: bytes) -> Fix | Rejection:
     """Validate one decoded message or table row (with ``arrival_ts``) into a Fix or a Rejection."""
     try:
-        return _FIX.validate_python(_rename(d))
+        return _FIX.validate_python(d)
     except ValidationError as exc:
         return _reject_validation(exc, raw, d)
 

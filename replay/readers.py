@@ -108,8 +108,8 @@ def iter_parquet(path: Path, source: int, delay_ms: int | None, batch_rows: int
     row = 0
     for batch in pf.iter_batches(batch_size=batch_rows):
         for rec in batch.to_pylist():
-            yield Item(source, row, decode_row(_with_assumed_arrival(
-                {k: v for k, v in rec.items() if v is not None}, delay_ms), rec))
+            fixed = rec if delay_ms is None else _with_assumed_arrival(dict(rec), delay_ms)
+            yield Item(source, row, decode_row(fixed, rec))
             row += 1
 
 
