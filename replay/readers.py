@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 import orjson
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from featurestore.schema import (
@@ -105,6 +106,12 @@ def iter_parquet(path: Path, source: int, delay_ms: int | None, batch_rows: int
                  ) -> Iterator[Item]:
     pf = pq.ParquetFile(path)
     _check_columns(path, pf.schema_arrow.names, delay_ms)
+    for name in ("event_ts", "arrival_ts"):
+        if name in pf.schema_arrow.names:
+            kind = pf.schema_arrow.field(name).type
+            if pa.types.is_timestamp(kind) and kind.tz is None:
+                raise InputError(f"{path}: column {name} is a timestamp without a time zone; "
+                                 "store it as UTC (e.g. timestamp[ms, tz=UTC]) or epoch seconds")
     row = 0
     for batch in pf.iter_batches(batch_size=batch_rows):
         for rec in batch.to_pylist():

@@ -241,3 +241,29 @@ def test_csv_dead_letter_keeps_the_cells_as_written(tmp_path: Path) -> None:
                                         "lon": "-20.6", "status": "vacant"}
     assert json.loads(dl[1]["raw"])["status"] == ""
     assert "required field is missing" in dl[1]["detail"]
+
+
+def test_timestamp_columns_and_iso_text(tmp_path: Path) -> None:
+    import datetime as dt
+
+    utc = dt.timezone.utc
+    base = dt.datetime(2026, 6, 1, tzinfo=utc)
+    rows = [{"vehicle_id": "veh-1", "event_ts": base + dt.timedelta(seconds=15 * k),
+             "arrival_ts": base + dt.timedelta(seconds=15 * k + 1), "lat": LAT + k / 1000,
+             "lon": LON, "status": "occupied" if 2 <= k < 6 else "vacant"} for k in range(8)]
+    pq.write_table(pa.Table.from_pylist(rows), tmp_path / "ts.parquet")
+    s = replay_trips([tmp_path / "ts.parquet"], tmp_path / "t.parquet")
+    assert s.training_rows == 1 and s.stats["rejected"] == {}
+    trip = pq.read_table(tmp_path / "t.parquet").to_pylist()[0]
+    assert trip["duration_s"] == 60.0 and trip["pickup_ts"] == base + dt.timedelta(seconds=30)
+    iso = tmp_path / "iso.csv"
+    iso.write_text("vehicle_id,event_ts,arrival_ts,lat,lon,status\n"
+                   "v,2026-06-01T02:00:00+02:00,2026-06-01T00:00:01Z,-33.2,-20.6,vacant\n")
+    s = replay_trips([iso], tmp_path / "t2.parquet")
+    assert s.stats["accepted"] == 1
+    naive = pa.table({"vehicle_id": ["v"], "event_ts": [dt.datetime(2026, 6, 1)],
+                      "arrival_ts": [dt.datetime(2026, 6, 1)], "lat": [LAT], "lon": [LON],
+                      "status": ["vacant"]})
+    pq.write_table(naive, tmp_path / "naive.parquet")
+    with pytest.raises(InputError, match="timestamp without a time zone"):
+        replay_trips([tmp_path / "naive.parquet"], tmp_path / "t3.parquet")
