@@ -15,7 +15,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from functools import lru_cache
+from functools import cache
 
 import h3
 
@@ -57,7 +57,7 @@ TRIP_NAMES = ["trip_active", "trip_elapsed_s", "trip_distance_m", "trip_displace
               "trip_start_cell", "trip_initial_heading_deg", "trip_fixes"]
 ROUTE_NAMES = ["route_trips", "route_mean_duration_s", "route_std_duration_s"]
 INT_NAMES = frozenset(
-    [n for n in CELL_NAMES] + ["trip_active", "trip_fixes", "route_trips"])
+    [*CELL_NAMES, "trip_active", "trip_fixes", "route_trips"])
 STR_NAMES = frozenset(["vehicle_cell", "vehicle_status", "trip_start_cell"])
 
 
@@ -81,28 +81,28 @@ def bearing(lat1: float, lon1: float, lat2: float, lon2: float) -> float:
     return 0.0 if b >= 360.0 else b
 
 
-def circular_mean(degrees: Sequence[float], r_floor: float | None = 1e-9
-                  ) -> tuple[float, float]:
+def circular_mean(degrees: Sequence[float], r_floor: float = 1e-9) -> tuple[float, float]:
     """(mean direction in [0, 360), mean resultant length R); (NaN, NaN) when empty.
 
-    The direction is NaN when R < r_floor (the mean is undefined); r_floor None never does."""
+    Mean of the unit vectors; the direction is NaN when R < r_floor (it is undefined there:
+    north then south has R = 0 and atan2 of rounding noise would give an arbitrary angle)."""
     if not degrees:
         return NAN, NAN
     c = sum(math.cos(math.radians(d)) for d in degrees) / len(degrees)
     s = sum(math.sin(math.radians(d)) for d in degrees) / len(degrees)
     r = math.hypot(c, s)
-    if r_floor is not None and r < r_floor:
+    if r < r_floor:
         return NAN, r
     m = math.degrees(math.atan2(s, c)) % 360.0
     return (0.0 if m >= 360.0 else m), r
 
 
-@lru_cache(maxsize=None)
+@cache
 def cell_at(lat: float, lon: float, res: int) -> str:
     return h3.latlng_to_cell(lat, lon, res)
 
 
-@lru_cache(maxsize=None)
+@cache
 def disk(cell: str) -> tuple[str, ...]:
     return tuple(h3.grid_disk(cell, 1))
 
@@ -321,7 +321,9 @@ class Oracle:
                 "trip_displacement_m": haversine(pk["lat"], pk["lon"], f["lat"], f["lon"],
                                                  self.p.radius_m),
                 "trip_start_cell": cell_at(pk["lat"], pk["lon"], self.p.cell_res),
-                "trip_initial_heading_deg": circular_mean(t.initial_bearings, None)[0],
+                # The same circular mean as the vehicle heading, so NaN also when R < 1e-9
+                # (the trip family's written definition says only "NaN if none").
+                "trip_initial_heading_deg": circular_mean(t.initial_bearings)[0],
                 "trip_fixes": t.fixes,
             })
         return out

@@ -16,9 +16,9 @@ import h3
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from geographiclib.geodesic import Geodesic
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
 from oracle import (
     CELL_NAMES,
     DAY_MS,
@@ -28,7 +28,12 @@ from oracle import (
     TRIP_NAMES,
     VEHICLE_NAMES,
     Oracle,
+    bearing,
+    circular_mean,
+    haversine,
 )
+from scipy.stats import circmean
+
 from replay.training import replay_labels, replay_trips
 
 BASE_LAT, BASE_LON = -33.2, -20.6  # the fictional demo city's centre (open sea)
@@ -42,7 +47,7 @@ FAR_CELL8 = h3.latlng_to_cell(10.0, 10.0, 8)
 FAR_CELL7 = h3.latlng_to_cell(10.0, 10.0, 7)
 HEADING = {"vehicle_heading_deg", "trip_initial_heading_deg"}
 
-SETTINGS = settings(max_examples=70, deadline=None,
+SETTINGS = settings(max_examples=150, deadline=None,
                     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                            HealthCheck.function_scoped_fixture])
 
@@ -131,7 +136,7 @@ def streams(draw: st.DrawFn, max_vehicles: int = 6, max_fixes: int = 60) -> dict
     seed = draw(st.integers(0, 2**32 - 1))
     sizes = draw(st.lists(st.integers(1, max_fixes), min_size=1, max_size=max_vehicles))
     r = draw(rates())
-    day0 = 19_675  # days since the epoch: a date in December 2023
+    day0 = 19_675  # days since the epoch: 14 November 2023
     base = day0 * DAY_MS + draw(st.integers(0, 23)) * 3_600_000 + draw(st.integers(0, 3_599_999))
     coarse = draw(st.booleans())  # arrivals rounded down to whole seconds: many ties
     shuffled = draw(st.booleans())  # written in random order, replay sorts them
@@ -156,16 +161,17 @@ def label_rows(rng: random.Random, s: dict, n: int) -> list[dict]:
     hi = max(f["arrival_ms"] for f in fixes)
     cells8 = sorted({h3.latlng_to_cell(f["lat"], f["lon"], 8) for f in fixes})
     near = sorted({c for c8 in cells8 for c in h3.grid_disk(c8, 1)} - set(cells8))
-    kinds = ["arrival"] * 6 + ["event"] * 2 + ["between"] * 3 + ["before", "ttl", "route",
-                                                                  "day_edge"]
+    kinds = ["arrival"] * 6 + ["event"] * 2 + ["between"] * 3 + [
+        "last", "before", "ttl", "route", "day_edge"]
+    last = {f["vehicle_id"]: f for f in sorted(fixes, key=lambda f: f["event_ms"])}
     out = []
     for _ in range(n):
-        f = rng.choice(fixes)
-        a, e = f["arrival_ms"], f["event_ms"]
         kind = rng.choice(kinds)
+        f = rng.choice(list(last.values()) if kind == "last" else fixes)
+        a, e = f["arrival_ms"], f["event_ms"]
         if kind == "arrival":
             t = a + rng.choice([0, 0, 0, -1, 1])
-        elif kind == "event":
+        elif kind in ("event", "last"):  # the "now" horizon's edges
             t = e + rng.choice([0, 119_999, 120_000, 120_001])
         elif kind == "between":
             t = rng.randint(lo, hi)
@@ -380,3 +386,159 @@ def test_late_fix_is_invisible_before_its_arrival(tmp_path: Path) -> None:
     assert rows[5]["cell_fixes_60m"] == 0  # 11:01: buckets 10:02..11:01
     want = oracle_rows(Oracle(fixes), labels)
     assert not mismatches(rows, want, FEATURES, "vehicle_id")
+
+
+def one_vehicle(points: list[tuple[float, float, str]], t0: int, every_ms: int = 10_000,
+                delay_ms: int = 500) -> list[dict]:
+    out = []
+    for i, (north, east, status) in enumerate(points):
+        lat, lon = to_latlon(north, east)
+        out.append({"vehicle_id": "v0", "event_ms": t0 + i * every_ms,
+                    "arrival_ms": t0 + i * every_ms + delay_ms, "lat": lat, "lon": lon,
+                    "status": status, "seq": i})
+    return out
+
+
+def test_now_horizon_and_vehicle_ttl_edges(tmp_path: Path) -> None:
+    t0 = 19_675 * DAY_MS + 10 * 3_600_000
+    fixes = one_vehicle([(0, 0, "vacant")], t0)
+    cell = h3.latlng_to_cell(fixes[0]["lat"], fixes[0]["lon"], 8)
+    seen = fixes[0]["arrival_ms"]
+    times = [t0 + 119_999, t0 + 120_000, t0 + 120_001, seen + TTL_MS, seen + TTL_MS + 1]
+    labels = [{"ts_ms": t, "vehicle_id": "v0", "cell": cell, "origin_cell": FAR_CELL7,
+               "dest_cell": FAR_CELL7} for t in times]
+    rows = run_labels(tmp_path, {"fixes": fixes, "labels": labels, "shuffled": False})[0]
+    rows = rows.to_pylist()
+    # "now" counts a fix whose event time is >= T - 120 s: in at exactly 120 s, out 1 ms later
+    assert [r["cell_vacant_now"] for r in rows[:3]] == [1, 1, 0]
+    assert [r["cell_ring_vacant_now"] for r in rows[:3]] == [1, 1, 0]
+    # the vehicle is known while T - seen <= 6 h, gone 1 ms later
+    assert rows[3]["vehicle_cell"] == cell and rows[3]["vehicle_fix_age_s"] == 21_600.5
+    assert rows[4]["vehicle_cell"] is None and math.isnan(rows[4]["vehicle_fix_age_s"])
+    assert rows[4]["trip_fixes"] == 0 and rows[4]["trip_active"] == 0
+    assert not mismatches(rows, oracle_rows(Oracle(fixes), labels), FEATURES, "vehicle_id")
+
+
+def test_cancelling_bearings_leave_no_heading(tmp_path: Path) -> None:
+    """North 100 m then back south: bearings 0 and 180 deg, mean resultant length ~6e-17."""
+    t0 = 19_675 * DAY_MS + 10 * 3_600_000
+    fixes = one_vehicle([(0, 0, "vacant"), (0, 0, "occupied"), (100, 0, "occupied"),
+                         (0, 0, "occupied")], t0)
+    labels = [{"ts_ms": t0 + 40_000, "vehicle_id": "v0", "cell": FAR_CELL8,
+               "origin_cell": FAR_CELL7, "dest_cell": FAR_CELL7}]
+    r = run_labels(tmp_path, {"fixes": fixes, "labels": labels, "shuffled": False})[0]
+    r = r.to_pylist()[0]
+    assert math.isnan(r["vehicle_heading_deg"]) and r["vehicle_heading_r"] < 1e-9
+    assert math.isnan(r["trip_initial_heading_deg"])
+    assert r["trip_active"] == 1 and r["trip_fixes"] == 3
+    assert r["trip_displacement_m"] == 0.0
+    # 2 x 100 "generator metres" of latitude = 2 * 100 / 111 000 deg on a sphere of the IUGG
+    # mean radius: 2 * 6 371 008.8 * radians(100 / 111 000) m (arc length, exact on a sphere)
+    assert math.isclose(r["trip_distance_m"], 2 * 6_371_008.8 * math.radians(100 / 111_000),
+                        rel_tol=1e-9)
+    assert not mismatches([r], oracle_rows(Oracle(fixes), labels), FEATURES, "vehicle_id")
+
+
+def test_oracle_geometry_against_geographiclib_and_scipy() -> None:
+    """The oracle's own geometry against libraries outside the project: haversine and initial
+    bearing against geographiclib's geodesic on a sphere (a = 6 371 008.8 m, flattening 0,
+    where the geodesic is the great circle), the circular mean direction against
+    scipy.stats.circmean."""
+    sphere = Geodesic(6_371_008.8, 0.0)
+    rng = random.Random(7)
+    for _ in range(200):
+        la1, lo1 = to_latlon(rng.uniform(-3_000, 3_000), rng.uniform(-3_000, 3_000))
+        la2, lo2 = to_latlon(rng.uniform(-3_000, 3_000), rng.uniform(-3_000, 3_000))
+        g = sphere.Inverse(la1, lo1, la2, lo2)
+        assert math.isclose(haversine(la1, lo1, la2, lo2), g["s12"], rel_tol=1e-9)
+        assert abs((bearing(la1, lo1, la2, lo2) - g["azi1"] + 180) % 360 - 180) < 1e-7
+    for _ in range(200):
+        degs = [rng.uniform(0, 360) for _ in range(rng.randint(1, 5))]
+        mean, r = circular_mean(degs)
+        want = math.degrees(circmean([math.radians(d) for d in degs]))
+        assert abs((mean - want + 180) % 360 - 180) < 1e-9
+        c = sum(math.cos(math.radians(d)) for d in degs)
+        s = sum(math.sin(math.radians(d)) for d in degs)
+        assert math.isclose(r, math.hypot(c, s) / len(degs), rel_tol=1e-12)
+
+
+def test_trip_row_is_as_of_everything_that_arrived_in_that_millisecond(tmp_path: Path) -> None:
+    """The pickup, the next fix and the dropoff arrive in one millisecond: the trip row's
+    vector as of the pickup's arrival already holds the dropoff (as-of T means every fix with
+    arrival <= T), so it shows no trip in progress; the labels come from the dropoff."""
+    t0 = 19_675 * DAY_MS + 10 * 3_600_000
+    fixes = one_vehicle([(0, 0, "vacant"), (0, 0, "occupied"), (200, 0, "occupied"),
+                         (400, 0, "vacant")], t0)
+    fixes[2]["arrival_ms"] = fixes[3]["arrival_ms"] = fixes[1]["arrival_ms"]
+    path = write_fixes(tmp_path / "fixes.parquet", fixes)
+    replay_trips([path], tmp_path / "trips.parquet", after_fixes=1)
+    (row,) = read_trips(tmp_path / "trips.parquet")
+    assert (row["pickup_ts"], row["as_of_ts"], row["dropoff_ts"]) == (
+        t0 + 10_000, t0 + 10_500, t0 + 30_000)
+    assert row["trip_id"] == f"v0:{t0 + 10_000}" and row["duration_s"] == 20.0
+    assert (row["trip_active"], row["trip_fixes"], row["vehicle_status"]) == (0, 0, "vacant")
+    # 400 generator metres due north = radians(400 / 111 000) of arc on the 6 371 008.8 m sphere
+    assert math.isclose(row["distance_m"], 6_371_008.8 * math.radians(400 / 111_000),
+                        rel_tol=1e-9)
+    (want,) = Oracle(fixes).trips(1)
+    assert all(same_trip_value(n, row[n], want[n]) for n in TRIP_ROW_NAMES)
+    # after_fixes=2: the trip has 2 fixes before its dropoff, so it still gets a row
+    replay_trips([path], tmp_path / "trips2.parquet", after_fixes=2)
+    assert [r["as_of_ts"] for r in read_trips(tmp_path / "trips2.parquet")] == [t0 + 10_500]
+    replay_trips([path], tmp_path / "trips3.parquet", after_fixes=3)
+    assert read_trips(tmp_path / "trips3.parquet") == []
+
+
+def test_route_window_is_keyed_by_the_dropoff_arrival_day(tmp_path: Path) -> None:
+    """Two trips on one route picked up in the 23:00 hour: 600 s (dropoff 23:50) and 900 s
+    (dropoff event 23:59:59, arriving 00:00:01 the next day, so it counts on that day)."""
+    d0 = 19_675
+    h23 = d0 * DAY_MS + 23 * 3_600_000
+
+    def trip(vid: str, start: int, pickup: int, mid: int, drop: int, drop_delay: int
+             ) -> list[dict]:
+        pts = [(start, 0, "vacant"), (pickup, 0, "occupied"), (mid, 150, "occupied"),
+               (drop, 300, "vacant")]
+        out = []
+        for k, (ev, north, status) in enumerate(pts):
+            lat, lon = to_latlon(north, 0)
+            out.append({"vehicle_id": vid, "event_ms": h23 + ev, "lat": lat, "lon": lon,
+                        "status": status,
+                        "arrival_ms": h23 + ev + (drop_delay if k == 3 else 500)})
+        return out
+
+    fixes = (trip("v0", 39 * 60_000, 40 * 60_000, 45 * 60_000, 50 * 60_000, 500)
+             + trip("v1", 44 * 60_000, 44 * 60_000 + 59_000, 52 * 60_000, 3_599_000, 2_000))
+    fixes.sort(key=lambda f: f["arrival_ms"])
+    for i, f in enumerate(fixes):
+        f["seq"] = i
+    o7 = h3.latlng_to_cell(*to_latlon(0, 0), 7)
+    d7 = h3.latlng_to_cell(*to_latlon(300, 0), 7)
+    times = [h23 + 3_599_999, (d0 + 1) * DAY_MS + 1_000, (d0 + 1) * DAY_MS + 23 * 3_600_000,
+             (d0 + 28) * DAY_MS - 1, (d0 + 28) * DAY_MS + 23 * 3_600_000,
+             (d0 + 29) * DAY_MS + 23 * 3_600_000]
+    labels = [{"ts_ms": t, "origin_cell": o7, "dest_cell": d7} for t in times]
+    fx = write_fixes(tmp_path / "fixes.parquet", fixes)
+    lb = write_labels(tmp_path / "labels.parquet", labels, ("origin_cell", "dest_cell"))
+    replay_labels([fx], lb, tmp_path / "out.parquet")
+    table = pq.read_table(tmp_path / "out.parquet")
+    assert table.column_names == ["ts", "origin_cell", "dest_cell", *ROUTE_NAMES]
+    got = [(r["route_trips"], r["route_mean_duration_s"], r["route_std_duration_s"])
+           for r in table.to_pylist()]
+    nan = math.nan
+    want = [
+        (1, 600.0, 0.0),  # 23:59:59.999: only the first dropoff has arrived
+        (0, nan, nan),  # 00:00:01 next day: both arrived, but it is the 00:00 hour
+        (2, 750.0, 150.0),  # 23:00 next day: both; population std of 600 and 900 s
+        (2, 750.0, 150.0),  # last ms of day d0+27: days d0 and d0+1 are both within 28
+        (1, 900.0, 0.0),  # day d0+28: day d0 has left the window, d0+1 (arrival day) not
+        (0, nan, nan),  # day d0+29: both gone
+    ]
+    assert [g[0] for g in got] == [w[0] for w in want]
+    for g, w in zip(got, want, strict=True):
+        assert all(same("route_mean_duration_s", a, b) for a, b in zip(g[1:], w[1:],
+                                                                        strict=True)), (g, w)
+    orc = Oracle(fixes)
+    for t, g in zip(times, got, strict=True):
+        w = orc.route(o7, d7, t)
+        assert all(same(n, a, w[n]) for n, a in zip(ROUTE_NAMES, g, strict=True)), (t, g, w)
