@@ -74,7 +74,7 @@ def _vehicle_features(cfg: EngineConfig) -> list[Feature]:
                 "haversine distance over time between the last two in-order fixes (0 with one)"),
         Feature("vehicle_heading_deg", "vehicle", "float", None,
                 f"circular mean of the bearings of the last up to {n} moving steps "
-                f"(>= {cfg.moving_step_m:g} m); NaN with none"),
+                f"(>= {cfg.moving_step_m:g} m); NaN with none or when undefined (R < 1e-9)"),
         Feature("vehicle_heading_r", "vehicle", "float", None,
                 "mean resultant length of those bearings"),
     ]
@@ -91,7 +91,8 @@ def _trip_features(cfg: EngineConfig) -> list[Feature]:
                 "haversine distance from the pickup fix to the latest fix, m"),
         Feature("trip_start_cell", "trip", "str", None, "cell of the pickup fix"),
         Feature("trip_initial_heading_deg", "trip", "float", None,
-                f"circular mean of the moving-step bearings among the trip's first {k} fixes"),
+                f"circular mean of the moving-step bearings among the trip's first {k} fixes, "
+                "the pickup fix included; NaN with none or when undefined (R < 1e-9)"),
         Feature("trip_fixes", "trip", "int", None,
                 "in-order fixes of the trip so far, the pickup fix included"),
     ]

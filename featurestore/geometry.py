@@ -35,6 +35,27 @@ def initial_bearing_deg(lat1: float, lon1: float, lat2: float, lon2: float) -> f
     return 0.0 if deg == 360.0 else deg
 
 
+def step_m_and_bearing(
+    lat1: float, lon1: float, lat2: float, lon2: float, radius_m: float = EARTH_RADIUS_M
+) -> tuple[float, float]:
+    """``haversine_m`` and ``initial_bearing_deg`` of one step, sharing the trigonometry.
+
+    Gives results identical to calling the two functions separately.
+    """
+    p1 = math.radians(lat1)
+    p2 = math.radians(lat2)
+    dp = p2 - p1
+    dl = math.radians(lon2 - lon1)
+    c1 = math.cos(p1)
+    c2 = math.cos(p2)
+    a = math.sin(dp / 2) ** 2 + c1 * c2 * math.sin(dl / 2) ** 2
+    dist = 2.0 * radius_m * math.asin(min(1.0, math.sqrt(a)))
+    y = math.sin(dl) * c2
+    x = c1 * math.sin(p2) - math.sin(p1) * c2 * math.cos(dl)
+    deg = math.degrees(math.atan2(y, x)) % 360.0
+    return dist, (0.0 if deg == 360.0 else deg)
+
+
 def circular_mean_deg(angles_deg: Iterable[float]) -> tuple[float, float]:
     """Circular mean (degrees, [0, 360)) and mean resultant length R of angles.
 

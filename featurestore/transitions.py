@@ -14,7 +14,7 @@ from zoneinfo import ZoneInfo
 
 from featurestore.cells import cell_of
 from featurestore.config import EngineConfig
-from featurestore.geometry import haversine_m, initial_bearing_deg
+from featurestore.geometry import step_m_and_bearing
 from featurestore.schema import Fix
 from featurestore.state import TripState, VehicleState
 
@@ -95,10 +95,10 @@ def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[Ve
     if fix.event_ms <= state.event_ms:  # out of order: counts only in the cell's fixes
         return state._replace(seen_ms=seen_ms, recent=recent), Effect(cell, bucket, False)
 
-    step_m = haversine_m(state.lat, state.lon, fix.lat, fix.lon, cfg.earth_radius_m)
+    step_m, step_bearing = step_m_and_bearing(state.lat, state.lon, fix.lat, fix.lon,
+                                              cfg.earth_radius_m)
     speed = step_m / ((fix.event_ms - state.event_ms) / 1000.0)
-    moving = step_m >= cfg.moving_step_m
-    bearing = initial_bearing_deg(state.lat, state.lon, fix.lat, fix.lon) if moving else None
+    bearing = step_bearing if step_m >= cfg.moving_step_m else None
     bearings = state.bearings
     if bearing is not None:
         bearings = (*bearings, bearing)[-cfg.heading_steps:]

@@ -384,3 +384,17 @@ def test_circular_mean_single_angle(angle):
     ref_mean, ref_r = scipy_mean_and_r([angle])
     assert angle_gap_deg(mean, ref_mean) < 1e-9
     assert ref_r == pytest.approx(1.0, abs=1e-12)
+
+
+def test_step_helper_equals_the_two_functions_exactly() -> None:
+    # Internal consistency (not an outside source): the engine's shared-trigonometry helper
+    # must give bit-identical values to the public haversine and bearing functions.
+    import random
+
+    from featurestore.geometry import haversine_m, initial_bearing_deg, step_m_and_bearing
+
+    rng = random.Random(12)
+    for _ in range(2000):
+        a = (rng.uniform(-80, 80), rng.uniform(-180, 180))
+        b = (a[0] + rng.uniform(-0.05, 0.05), a[1] + rng.uniform(-0.05, 0.05))
+        assert step_m_and_bearing(*a, *b) == (haversine_m(*a, *b), initial_bearing_deg(*a, *b))
