@@ -118,63 +118,73 @@ class Engine:
         delta = Delta()
         wm = self.store.watermark_ms()
         stop_at: int | None = None
-        consumed = 0
+        consumed = accepted = in_order = 0
+        ttl = cfg.vehicle_ttl_ms
+        cells = delta.cells
+        vehicles = delta.vehicles
+        rejected = result.rejected
         for i, item in enumerate(batch):
             if stop_at is not None and item.arrival_ms is not None and item.arrival_ms > stop_at:
                 break
             consumed = i + 1
-            if isinstance(item, Rejection):
-                result.rejected.append((i, item))
+            if type(item) is Rejection:
+                rejected.append((i, item))
                 stats.rejected[item.reason] += 1
                 continue
             fix = item
+            vid = fix.vehicle_id
             if wm is None or fix.arrival_ms > wm:
                 wm = fix.arrival_ms
             reason = timing_reason(fix, cfg)
-            state = current.get(fix.vehicle_id)
-            if state is not None and fix.arrival_ms - state.seen_ms > cfg.vehicle_ttl_ms:
+            state = current.get(vid)
+            if state is not None and fix.arrival_ms - state.seen_ms > ttl:
                 state = None  # logically expired: the vehicle starts afresh
             if reason is None and state is not None and fix.event_ms in state.recent:
                 reason = DUPLICATE
             if reason is not None:
                 raw = raws.get(i) if raws is not None else None
                 rej = Rejection(reason, _timing_detail(reason, fix, cfg), raw or _fix_raw(fix),
-                                fix.vehicle_id, fix.arrival_ms)
-                result.rejected.append((i, rej))
+                                vid, fix.arrival_ms)
+                rejected.append((i, rej))
                 stats.rejected[reason] += 1
                 continue
             new, eff = advance(state, fix, cfg)
-            current[fix.vehicle_id] = new
-            delta.vehicles[fix.vehicle_id] = new
-            row = delta.cells.get((eff.cell, eff.bucket))
+            current[vid] = new
+            vehicles[vid] = new
+            key = (eff.cell, eff.bucket)
+            row = cells.get(key)
             if row is None:
-                row = delta.cells[(eff.cell, eff.bucket)] = [0, 0, 0]
+                row = cells[key] = [0, 0, 0]
             row[0] += 1
-            result.accepted += 1
-            if eff.in_order:
-                result.in_order += 1
-                if eff.pickup:
-                    row[1] += 1
-                    result.pickup_cells.append(eff.cell)
-                if eff.dropoff:
-                    row[2] += 1
-                if eff.trip_fix and new.trip is not None:
-                    ev = TripEvent(fix.vehicle_id, new.trip.trip_id, new.trip.pickup_event_ms,
-                                   eff.trip_fix, fix.arrival_ms)
-                    result.trip_events.append(ev)
-                    if until is not None and stop_at is None and until(ev):
-                        stop_at = fix.arrival_ms
-                if eff.completed is not None:
-                    c = eff.completed
-                    key = (c.origin_route_cell, c.dest_route_cell, c.pickup_hour,
-                           c.dropoff_arrival_ms // DAY_MS)
-                    r = delta.routes.setdefault(key, [0, 0, 0])
-                    r[0] += 1
-                    r[1] += c.duration_ms
-                    r[2] += c.duration_ms * c.duration_ms
-                    result.completed.append(c)
-            else:
-                result.out_of_order += 1
+            accepted += 1
+            if not eff.in_order:
+                continue
+            in_order += 1
+            if eff.pickup:
+                row[1] += 1
+                result.pickup_cells.append(eff.cell)
+            elif eff.dropoff:
+                row[2] += 1
+            if eff.trip_fix and new.trip is not None:
+                ev = TripEvent(vid, new.trip.trip_id, new.trip.pickup_event_ms, eff.trip_fix,
+                               fix.arrival_ms)
+                result.trip_events.append(ev)
+                if until is not None and stop_at is None and until(ev):
+                    stop_at = fix.arrival_ms
+            if eff.completed is not None:
+                c = eff.completed
+                rkey = (c.origin_route_cell, c.dest_route_cell, c.pickup_hour,
+                        c.dropoff_arrival_ms // DAY_MS)
+                r = delta.routes.get(rkey)
+                if r is None:
+                    r = delta.routes[rkey] = [0, 0, 0]
+                r[0] += 1
+                r[1] += c.duration_ms
+                r[2] += c.duration_ms * c.duration_ms
+                result.completed.append(c)
+        result.accepted = accepted
+        result.in_order = in_order
+        result.out_of_order = accepted - in_order
         for vid, new in delta.vehicles.items():
             old = loaded.get(vid)
             if old is None or (old.cell, old.status, old.event_ms) != (
