@@ -44,7 +44,7 @@ def numpy_floor(path: Path, resolution: int = 8, bucket_s: int = 60) -> tuple[fl
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--vehicles", type=int, default=420)
+    ap.add_argument("--vehicles", type=int, default=445, help="445 gives about 1 M fixes")
     ap.add_argument("--hours", type=float, default=24.0)
     ap.add_argument("--seed", type=int, default=7)
     ap.add_argument("--data", default=None, help="directory for generated days (cached)")

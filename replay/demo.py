@@ -102,7 +102,7 @@ def run_demo(out_dir: str | Path = "demo-out", seed: int = 7, vehicles: int = 20
     t1 = time.perf_counter()
     summary = replay_trips([day_path], d / "trips.parquet", config=cfg, after_fixes=1,
                            dead_letters=d / "dead-letters.parquet", on_batch=count,
-                           prepare=prepare)
+                           prepare=prepare, progress=stream is None and sys.stderr.isatty())
     t_replay = time.perf_counter() - t1
     map_path = write_hexmap(dict(pickups), d / "pickups.html",
                             f"{CITY_NAME}: pickups per res-{cfg.cell_resolution} cell, "
