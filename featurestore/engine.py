@@ -84,10 +84,13 @@ class Engine:
         self.store = store
         self.config = config or EngineConfig()
         self.stats = EngineStats()
+        self.history_ms = int(getattr(store, "history_ms", 0) or 0)
 
     def retention(self, watermark_ms: int) -> Retention:
-        """Horizons below which no lookup at or after ``watermark_ms`` reads anything."""
+        """Horizons below which no lookup the store can still answer reads anything: at or
+        after ``watermark_ms`` minus the store's history."""
         cfg = self.config
+        watermark_ms -= self.history_ms
         return Retention(
             bucket_min=watermark_ms // cfg.bucket_ms - cfg.longest_window_buckets,
             presence_min_event_ms=watermark_ms - cfg.now_horizon_ms,
@@ -123,6 +126,7 @@ class Engine:
         cells = delta.cells
         vehicles = delta.vehicles
         rejected = result.rejected
+        history = self.history_ms > 0
         for i, item in enumerate(batch):
             if stop_at is not None and item.arrival_ms is not None and item.arrival_ms > stop_at:
                 break
@@ -149,6 +153,10 @@ class Engine:
                 stats.rejected[reason] += 1
                 continue
             new, eff = advance(state, fix, cfg)
+            if history:
+                delta.vehicle_log.append((fix.arrival_ms, vid, current.get(vid)))
+                delta.cell_log.append((fix.arrival_ms, eff.cell, eff.bucket, 1, int(eff.pickup),
+                                       int(eff.dropoff)))
             current[vid] = new
             vehicles[vid] = new
             key = (eff.cell, eff.bucket)
@@ -182,6 +190,8 @@ class Engine:
                 r[1] += c.duration_ms
                 r[2] += c.duration_ms * c.duration_ms
                 result.completed.append(c)
+                if history:
+                    delta.route_log.append((fix.arrival_ms, *rkey, c.duration_ms))
         result.accepted = accepted
         result.in_order = in_order
         result.out_of_order = accepted - in_order

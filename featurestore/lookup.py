@@ -1,7 +1,8 @@
 """As-of lookups: build one batched store read for many keys, then compute vectors.
 
-A lookup "as of T" answers with what was known at T. Stores that keep only the current
-state (the in-memory store) answer for T at or after their watermark.
+A lookup "as of T" answers with what was known at T. A store answers for T at or after its
+watermark, and for earlier T within the history it keeps (``history_ms``); earlier than that
+it raises AsOfError.
 """
 
 from __future__ import annotations
@@ -20,12 +21,8 @@ from featurestore.features import (
     route_vector,
     vehicle_vector,
 )
-from featurestore.store import ReadRequest, StateStore
+from featurestore.store import AsOfError, ReadRequest, StateStore
 from featurestore.transitions import local_hour
-
-
-class AsOfError(ValueError):
-    """A lookup asked for a moment the store can no longer answer exactly."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -35,6 +32,9 @@ class RouteQuery:
     hour: int | None = None  # pickup hour of day; None = the hour of T in the city's zone
 
 
+__all__ = ["AsOfError", "Lookup", "RouteQuery"]
+
+
 class Lookup:
     """Point-in-time reads of vectors from any StateStore."""
 
@@ -42,15 +42,6 @@ class Lookup:
         self.store = store
         self.config = config or EngineConfig()
         self.catalog = Catalog(self.config)
-
-    def _check(self, as_of_ms: int, watermark: int | None) -> None:
-        if watermark is not None and as_of_ms < watermark and not getattr(
-            self.store, "keeps_history", False
-        ):
-            raise AsOfError(
-                f"as of {as_of_ms} ms is before this store's watermark {watermark} ms; "
-                "it keeps only current state"
-            )
 
     def vectors(
         self,
@@ -72,9 +63,8 @@ class Lookup:
         raw = self.store.read(ReadRequest(
             vehicles=list(dict.fromkeys(vehicles)), cells=ring_cells, bucket_lo=lo, bucket_hi=hi,
             presence_cells=ring_cells, presence_min_event_ms=presence_min_event_ms(as_of_ms, cfg),
-            routes=list(dict.fromkeys(keys)), day_lo=dlo, day_hi=dhi,
+            routes=list(dict.fromkeys(keys)), day_lo=dlo, day_hi=dhi, as_of_ms=as_of_ms,
         ))
-        self._check(as_of_ms, raw.watermark_ms)
         return (
             [vehicle_vector(raw.vehicles.get(v), as_of_ms, cfg) for v in vehicles],
             [cell_vector(c, as_of_ms, raw, cfg) for c in cells],

@@ -2,18 +2,36 @@
 
 from __future__ import annotations
 
+from collections import deque
 from collections.abc import Collection, Mapping
 
 from featurestore.state import VehicleState
-from featurestore.store import Delta, ReadRequest, ReadResult, Retention
+from featurestore.store import (
+    AsOfError,
+    CellLogEntry,
+    Delta,
+    ReadRequest,
+    ReadResult,
+    Retention,
+    RouteLogEntry,
+    VehicleLogEntry,
+)
 
 _PRUNE_EVERY = 256
 
 
 class MemoryStore:
-    """A StateStore in process memory. Memory is bounded by the retention horizons."""
+    """A StateStore in process memory. Memory is bounded by the retention horizons.
 
-    def __init__(self) -> None:
+    With ``history_ms > 0`` it also keeps the arrival-tagged change logs of that long
+    before its watermark and answers reads as of any moment in that span exactly.
+    """
+
+    def __init__(self, history_ms: int = 0) -> None:
+        self.history_ms = int(history_ms)
+        self._cell_log: deque[CellLogEntry] = deque()
+        self._route_log: deque[RouteLogEntry] = deque()
+        self._vehicle_log: deque[VehicleLogEntry] = deque()
         self._vehicles: dict[str, VehicleState] = {}
         self._cells: dict[str, dict[int, list[int]]] = {}
         self._routes: dict[tuple[str, str, int], dict[int, list[int]]] = {}
@@ -48,6 +66,12 @@ class MemoryStore:
         self._offsets.update(delta.offsets)
         if delta.watermark_ms is not None:
             self._watermark = max(self._watermark or delta.watermark_ms, delta.watermark_ms)
+        if self.history_ms:
+            self._cell_log.extend(delta.cell_log)
+            self._route_log.extend(delta.route_log)
+            self._vehicle_log.extend(delta.vehicle_log)
+            if self._watermark is not None:
+                self._trim_logs(self._watermark - self.history_ms)
         self._applies += 1
         if delta.retention is not None and self._applies % _PRUNE_EVERY == 0:
             self.prune(delta.retention)
@@ -75,8 +99,70 @@ class MemoryStore:
         for v in [v for v, s in self._vehicles.items() if s.seen_ms < keep.vehicle_min_seen_ms]:
             del self._vehicles[v]
 
+    def _trim_logs(self, keep_from_ms: int) -> None:
+        # Entries arrive in nondecreasing arrival order per source; trim from the left.
+        for log in (self._cell_log, self._route_log, self._vehicle_log):
+            while log and log[0][0] < keep_from_ms:
+                log.popleft()
+
     # --- reads -------------------------------------------------------------------------
     def read(self, request: ReadRequest) -> ReadResult:
+        t = request.as_of_ms
+        wm = self._watermark
+        if t is None or wm is None or t >= wm:
+            return self._read_now(request)
+        if not self.history_ms or t < wm - self.history_ms:
+            raise AsOfError(
+                f"as of {t} ms is before what this store can answer: its watermark is {wm} ms "
+                f"and it keeps {self.history_ms} ms of history"
+            )
+        return self._read_past(request, t)
+
+    def _read_past(self, request: ReadRequest, t: int) -> ReadResult:
+        """Current values minus every change that arrived after ``t``."""
+        out = self._read_now(request)
+        cells = set(request.cells)
+        for arr, cell, bucket, f, p, d in self._cell_log:
+            if arr > t and cell in cells and request.bucket_lo <= bucket <= request.bucket_hi:
+                row = out.cells[cell]
+                a, b, c = row[bucket]
+                row[bucket] = (a - f, b - p, c - d)
+        routes = set(request.routes)
+        for arr, o, dd, h, day, dur in self._route_log:
+            key = (o, dd, h)
+            if arr > t and key in routes and request.day_lo <= day <= request.day_hi:
+                n, s1, s2 = out.routes[key]
+                if n == 1:
+                    del out.routes[key]
+                else:
+                    out.routes[key] = (n - 1, s1 - dur, s2 - dur * dur)
+        before: dict[str, VehicleState | None] = {}
+        for arr, vid, prev in self._vehicle_log:
+            if arr > t and vid not in before:
+                before[vid] = prev
+        for vid in request.vehicles:
+            if vid in before:
+                prev = before[vid]
+                if prev is None:
+                    out.vehicles.pop(vid, None)
+                else:
+                    out.vehicles[vid] = prev
+        if request.presence_cells:
+            pcells = set(request.presence_cells)
+            m = request.presence_min_event_ms
+            counts = {c: list(v) for c, v in out.presence.items()}
+            for vid, prev in before.items():
+                now = self._vehicles.get(vid)
+                for st, sign in ((now, -1), (prev, 1)):
+                    if st is not None and st.cell in pcells and st.event_ms >= m:
+                        col = 0 if st.status == "vacant" else 1 if st.status == "occupied" else -1
+                        if col >= 0:
+                            counts[st.cell][col] += sign
+            out.presence = {c: (v[0], v[1]) for c, v in counts.items()}
+        out.watermark_ms = t
+        return out
+
+    def _read_now(self, request: ReadRequest) -> ReadResult:
         out = ReadResult(watermark_ms=self._watermark)
         out.vehicles = self.load_vehicles(request.vehicles)
         lo, hi = request.bucket_lo, request.bucket_hi

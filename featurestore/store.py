@@ -46,9 +46,23 @@ class Retention:
     route_day_min: int
 
 
+class AsOfError(ValueError):
+    """A lookup asked for a moment the store can no longer (or cannot) answer exactly."""
+
+
+# History entries, one per accepted fix (stores that keep history answer as of earlier T):
+CellLogEntry = tuple[int, str, int, int, int, int]  # arrival, cell, bucket, fixes, pick, drop
+RouteLogEntry = tuple[int, str, str, int, int, int]  # arrival, origin, dest, hour, day, dur_ms
+VehicleLogEntry = tuple[int, str, "VehicleState | None"]  # arrival, vehicle, state before it
+
+
 @dataclass(slots=True)
 class Delta:
-    """Everything one batch changes, coalesced: one entry per counter key and per vehicle."""
+    """Everything one batch changes, coalesced: one entry per counter key and per vehicle.
+
+    The ``*_log`` lists are filled only for stores with ``history_ms > 0``: they tag each
+    change with its arrival time so such stores can answer as of an earlier moment.
+    """
 
     vehicles: dict[str, VehicleState] = field(default_factory=dict)
     cells: dict[CellKey, list[int]] = field(default_factory=dict)
@@ -57,6 +71,9 @@ class Delta:
     watermark_ms: int | None = None
     retention: Retention | None = None
     offsets: dict[str, int] = field(default_factory=dict)  # source partition -> next offset
+    cell_log: list[CellLogEntry] = field(default_factory=list)
+    route_log: list[RouteLogEntry] = field(default_factory=list)
+    vehicle_log: list[VehicleLogEntry] = field(default_factory=list)
 
     def is_empty(self) -> bool:
         return not (self.vehicles or self.cells or self.routes or self.presence or self.offsets)
@@ -75,6 +92,7 @@ class ReadRequest:
     routes: Collection[RouteKey] = ()
     day_lo: int = 0  # inclusive
     day_hi: int = -1  # inclusive
+    as_of_ms: int | None = None  # None: the current state; else what was known at that time
 
 
 @dataclass(slots=True)
@@ -90,7 +108,13 @@ class ReadResult:
 
 @runtime_checkable
 class StateStore(Protocol):
-    """Storage for engine state. Implementations: MemoryStore, RedisStore."""
+    """Storage for engine state. Implementations: MemoryStore, RedisStore.
+
+    ``history_ms``: how far before its watermark the store answers reads exactly (0: only at
+    or after the watermark; earlier reads raise AsOfError).
+    """
+
+    history_ms: int
 
     def load_vehicles(self, vehicle_ids: Collection[str]) -> dict[str, VehicleState]:
         """The stored states of these vehicles (missing ones are absent)."""

@@ -10,7 +10,10 @@ from featurestore.memory_store import MemoryStore
 from featurestore.state import TripState, VehicleState
 from featurestore.store import Delta, PresenceMove, ReadRequest, Retention, StateStore
 
-STORES: dict[str, Callable[[], StateStore]] = {"memory": MemoryStore}
+STORES: dict[str, Callable[[], StateStore]] = {
+    "memory": MemoryStore,
+    "memory-history": lambda: MemoryStore(history_ms=3_600_000),
+}
 
 
 @pytest.fixture(params=sorted(STORES))
@@ -82,3 +85,27 @@ def test_prune_forgets_only_before_horizons() -> None:
     s.prune(Retention(bucket_min=2, presence_min_event_ms=1001, vehicle_min_seen_ms=50_000,
                       route_day_min=6))
     assert s.sizes() == {"vehicles": 1, "cell_buckets": 1, "route_days": 1, "presence": 0}
+
+
+def test_reads_as_of_earlier_moments(store: StateStore) -> None:
+    from featurestore.engine import Engine
+    from featurestore.lookup import AsOfError, Lookup
+    from featurestore.schema import Fix
+
+    t0 = 1_780_272_000_000
+    fixes = [Fix("a", t0 + 15_000 * k, -33.2 + k / 100, -20.6,  # 1.1 km steps
+                 "occupied" if k in (1, 2) else "vacant", t0 + 15_000 * k + 500)
+             for k in range(4)]
+    Engine(store).process(fixes)
+    lk = Lookup(store)
+    cell = lk.vehicle("a", t0 + 45_500)["vehicle_cell"]
+    if store.history_ms == 0:
+        with pytest.raises(AsOfError):
+            lk.vehicle("a", t0 + 15_500)
+        return
+    mid = lk.vehicle("a", t0 + 15_500)  # as of the pickup fix's arrival
+    assert mid["trip_active"] == 1 and mid["trip_fixes"] == 1 and mid["vehicle_cell"] != cell
+    assert lk.vehicle("a", t0 + 499)["vehicle_cell"] is None
+    first = lk.cell(mid["vehicle_cell"], t0 + 15_500)
+    assert first["cell_pickups_5m"] == 1 and first["cell_occupied_now"] == 1
+    assert lk.cell(mid["vehicle_cell"], t0 + 15_499)["cell_pickups_5m"] == 0
