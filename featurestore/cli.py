@@ -16,25 +16,30 @@ EPILOG = (f"Every engine option can also be set with an environment variable {EN
 
 def _engine_flags(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("engine (the feature definitions)")
-    g.add_argument("--cell-resolution", type=int, help="H3 resolution of cells (default 8)")
-    g.add_argument("--route-resolution", type=int, help="H3 resolution of routes (default 7)")
+    g.add_argument("--cell-resolution", type=int, metavar="RES",
+                   help="H3 resolution of cells (default 8)")
+    g.add_argument("--route-resolution", type=int, metavar="RES",
+                   help="H3 resolution of routes (default 7)")
     g.add_argument("--bucket-seconds", type=int, dest="bucket_s",
+                   metavar="SECONDS",
                    help="bucket length in seconds (default 60)")
-    g.add_argument("--windows", dest="windows_min",
+    g.add_argument("--windows", dest="windows_min", metavar="MINUTES,...",
                    type=lambda t: tuple(int(x) for x in t.split(",")),
                    help="cell windows in minutes, comma-separated (default 5,15,60)")
     g.add_argument("--ring-window", type=int, dest="ring_window_min",
+                   metavar="MINUTES",
                    help="window of cell_ring_pickups in minutes (default 15)")
-    g.add_argument("--max-delay", type=float, dest="max_delay_s",
+    g.add_argument("--max-delay", type=float, dest="max_delay_s", metavar="SECONDS",
                    help="maximum arrival delay in seconds before a fix is too late (default 300)")
-    g.add_argument("--clock-skew", type=float, dest="clock_skew_s",
+    g.add_argument("--clock-skew", type=float, dest="clock_skew_s", metavar="SECONDS",
                    help="allowed device clock lead in seconds (default 30)")
-    g.add_argument("--route-days", type=int, help="days of completed trips in route features "
-                                                  "(default 28)")
+    g.add_argument("--route-days", type=int, metavar="DAYS",
+                   help="days of completed trips in route features (default 28)")
     g.add_argument("--vehicle-ttl", type=float, dest="vehicle_ttl_s",
+                   metavar="SECONDS",
                    help="seconds without a fix before a vehicle's state is forgotten "
                         "(default 21600)")
-    g.add_argument("--city-tz", help="IANA time zone for route hours (default UTC)")
+    g.add_argument("--city-tz", metavar="ZONE", help="IANA time zone for route hours (default UTC)")
 
 
 _ENGINE_KEYS = ("cell_resolution", "route_resolution", "bucket_s", "windows_min",
