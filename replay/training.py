@@ -187,7 +187,9 @@ def replay_labels(inputs: Sequence[str | Path], labels: str | Path, out: str | P
                 raise InputError(f"{labels}: row {i + 1}: {problem}")
 
     session, dlf = _start(inputs, cfg, dead_letters)
-    results: list[dict[str, object]] = [{} for _ in range(n)]
+    feats = [catalog.by_name[nm] for nm in catalog.names(*families)]
+    # Column-wise results, pre-filled with each feature's empty value (a key never seen).
+    results: dict[str, list[object]] = {f.name: [f.empty] * n for f in feats}
     by_ts: dict[int, list[int]] = {}
     for i, t in enumerate(ts_ms):
         by_ts.setdefault(t, []).append(i)
@@ -198,21 +200,19 @@ def replay_labels(inputs: Sequence[str | Path], labels: str | Path, out: str | P
                   if "route" in families else [])
         session.ask(t, [v for v in vids if v is not None], [c for c in cells if c is not None],
                     [r for r in routes if r.origin_cell is not None and r.dest_cell is not None],
-                    _label_answer(rows, vids, cells, routes, results, catalog))
+                    _label_answer(rows, vids, cells, routes, results))
     summary = ReplaySummary(out=str(out), dead_letters=str(dead_letters) if dead_letters else None)
     try:
         _run(session, inputs, assume_delay_s, sort, progress, summary)
     finally:
         if dlf is not None:
             dlf.close()
-    feats = [catalog.by_name[nm] for nm in catalog.names(*families)]
     schema = pa.schema(list(table.schema) + feature_fields(feats))
-    columns = {f.name: [r.get(f.name, f.empty) for r in results] for f in feats}
     out_table = table
     for f in feats:
-        out_table = out_table.append_column(
-            pa.field(f.name, schema.field(f.name).type), pa.array(columns[f.name],
-                                                                   schema.field(f.name).type))
+        kind = schema.field(f.name).type
+        out_table = out_table.append_column(pa.field(f.name, kind),
+                                            pa.array(results.pop(f.name), kind))
     with TableWriter(out, schema, fmt) as w:
         w.write_table(out_table)
     summary.training_rows = n
@@ -220,23 +220,25 @@ def replay_labels(inputs: Sequence[str | Path], labels: str | Path, out: str | P
 
 
 def _label_answer(rows: list[int], vids: list, cells: list, routes: list,
-                  results: list[dict[str, object]], catalog: Catalog
-                  ) -> Callable[[list, list, list], None]:
+                  results: dict[str, list[object]]) -> Callable[[list, list, list], None]:
+    """Write the answers of one query into the label rows' columns (unseen keys keep the
+    empty values the columns were filled with)."""
+
+    def put(row: int, vec: dict[str, object]) -> None:
+        for name, value in vec.items():
+            results[name][row] = value
+
     def answer(vvec: list, cvec: list, rvec: list) -> None:
         vi = iter(vvec)
         ci = iter(cvec)
         ri = iter(rvec)
         for j, row in enumerate(rows):
-            res = results[row]
-            if vids:
-                res.update(next(vi) if vids[j] is not None
-                           else catalog.empty_vector("vehicle", "trip"))
-            if cells:
-                res.update(next(ci) if cells[j] is not None else catalog.empty_vector("cell"))
-            if routes:
-                r = routes[j]
-                ok = r.origin_cell is not None and r.dest_cell is not None
-                res.update(next(ri) if ok else catalog.empty_vector("route"))
+            if vids and vids[j] is not None:
+                put(row, next(vi))
+            if cells and cells[j] is not None:
+                put(row, next(ci))
+            if routes and routes[j].origin_cell is not None and routes[j].dest_cell is not None:
+                put(row, next(ri))
 
     return answer
 
