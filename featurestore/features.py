@@ -6,6 +6,7 @@ The single definition of every feature; live serving, replay and training sets a
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 from featurestore.cells import ring_of
 from featurestore.config import EngineConfig
@@ -41,27 +42,44 @@ def live_vehicle(state: VehicleState | None, as_of_ms: int, cfg: EngineConfig
     return state
 
 
-def _window_sums(buckets: dict[int, tuple[int, int, int]], hi: int, n: int, col: int) -> int:
-    lo = hi - n + 1
-    return sum(v[col] for b, v in buckets.items() if lo <= b <= hi)
+def _window_sums(buckets: dict[int, Sequence[int]], hi: int, lengths: Sequence[int]
+                 ) -> list[tuple[int, int, int]]:
+    """Per window length n (ascending): (fixes, pickups, dropoffs) over buckets hi-n+1 .. hi."""
+    out: list[tuple[int, int, int]] = []
+    f = p = d = 0
+    age = 0
+    get = buckets.get
+    for n in lengths:
+        while age < n:
+            v = get(hi - age)
+            if v is not None:
+                f += v[0]
+                p += v[1]
+                d += v[2]
+            age += 1
+        out.append((f, p, d))
+    return out
 
 
 def cell_vector(cell: str, as_of_ms: int, raw: ReadResult, cfg: EngineConfig
                 ) -> dict[str, object]:
     """The cell family for one cell at T. ``raw`` must hold the cell's ring buckets and presence."""
     hi = as_of_ms // cfg.bucket_ms
-    own = raw.cells.get(cell, {})
+    windows = sorted(cfg.windows_min)
+    sums = dict(zip(windows, _window_sums(raw.cells.get(cell, {}), hi,
+                                          [cfg.window_buckets(w) for w in windows]),
+                    strict=True))
     out: dict[str, object] = {}
     for col, kind in ((1, "pickups"), (2, "dropoffs"), (0, "fixes")):
         for w in cfg.windows_min:
-            out[f"cell_{kind}_{w}m"] = _window_sums(own, hi, cfg.window_buckets(w), col)
+            out[f"cell_{kind}_{w}m"] = sums[w][col]
     vac, occ = raw.presence.get(cell, (0, 0))
     out["cell_vacant_now"] = vac
     out["cell_occupied_now"] = occ
     ring = ring_of(cell)
-    rw = cfg.window_buckets(cfg.ring_window_min)
+    rw = [cfg.window_buckets(cfg.ring_window_min)]
     out[f"cell_ring_pickups_{cfg.ring_window_min}m"] = sum(
-        _window_sums(raw.cells.get(c, {}), hi, rw, 1) for c in ring
+        _window_sums(raw.cells.get(c, {}), hi, rw)[0][1] for c in ring
     )
     out["cell_ring_vacant_now"] = sum(raw.presence.get(c, (0, 0))[0] for c in ring)
     return out

@@ -169,7 +169,11 @@ class MemoryStore:
         for cell in request.cells:
             buckets = self._cells.get(cell)
             if buckets:
-                out.cells[cell] = {b: tuple(v) for b, v in buckets.items() if lo <= b <= hi}
+                if hi - lo < len(buckets):
+                    got = {b: buckets.get(b) for b in range(lo, hi + 1)}
+                    out.cells[cell] = {b: tuple(v) for b, v in got.items() if v is not None}
+                else:
+                    out.cells[cell] = {b: tuple(v) for b, v in buckets.items() if lo <= b <= hi}
         m = request.presence_min_event_ms
         for cell in request.presence_cells:
             vac = self._presence.get((cell, "vacant"), {})
