@@ -54,6 +54,9 @@ class Lookup:
         cfg = self.config
         ring_cells = sorted({c for cell in cells for c in ring_of(cell)})
         lo, hi = bucket_range(as_of_ms, cfg)
+        ring_lo = hi - cfg.window_buckets(cfg.ring_window_min) + 1
+        wanted = dict.fromkeys(ring_cells, ring_lo)  # neighbours: the ring window only
+        wanted.update(dict.fromkeys(cells, lo))  # the cells themselves: the longest window
         dlo, dhi = day_range(as_of_ms, cfg)
         keys = [
             (r.origin_cell, r.dest_cell,
@@ -61,7 +64,7 @@ class Lookup:
             for r in routes
         ]
         raw = self.store.read(ReadRequest(
-            vehicles=list(dict.fromkeys(vehicles)), cells=ring_cells, bucket_lo=lo, bucket_hi=hi,
+            vehicles=list(dict.fromkeys(vehicles)), cells=wanted, bucket_hi=hi,
             presence_cells=ring_cells, presence_min_event_ms=presence_min_event_ms(as_of_ms, cfg),
             routes=list(dict.fromkeys(keys)), day_lo=dlo, day_hi=dhi, as_of_ms=as_of_ms,
         ))

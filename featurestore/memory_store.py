@@ -121,9 +121,10 @@ class MemoryStore:
     def _read_past(self, request: ReadRequest, t: int) -> ReadResult:
         """Current values minus every change that arrived after ``t``."""
         out = self._read_now(request)
-        cells = set(request.cells)
+        cells = request.cells
+        hi = request.bucket_hi
         for arr, cell, bucket, f, p, d in self._cell_log:
-            if arr > t and cell in cells and request.bucket_lo <= bucket <= request.bucket_hi:
+            if arr > t and cell in cells and cells[cell] <= bucket <= hi:
                 row = out.cells[cell]
                 a, b, c = row[bucket]
                 row[bucket] = (a - f, b - p, c - d)
@@ -165,8 +166,8 @@ class MemoryStore:
     def _read_now(self, request: ReadRequest) -> ReadResult:
         out = ReadResult(watermark_ms=self._watermark)
         out.vehicles = self.load_vehicles(request.vehicles)
-        lo, hi = request.bucket_lo, request.bucket_hi
-        for cell in request.cells:
+        hi = request.bucket_hi
+        for cell, lo in request.cells.items():
             buckets = self._cells.get(cell)
             if buckets:
                 if hi - lo < len(buckets):

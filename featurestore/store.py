@@ -84,9 +84,8 @@ class ReadRequest:
     """One batched read: everything a set of lookups needs, fetched together."""
 
     vehicles: Collection[str] = ()
-    cells: Collection[str] = ()
-    bucket_lo: int = 0  # inclusive
-    bucket_hi: int = -1  # inclusive
+    cells: Mapping[str, int] = field(default_factory=dict)  # cell -> first bucket wanted
+    bucket_hi: int = -1  # last bucket wanted (inclusive), for every cell
     presence_cells: Collection[str] = ()
     presence_min_event_ms: int = 0
     routes: Collection[RouteKey] = ()

@@ -44,8 +44,10 @@ def test_vehicle_round_trip(store: StateStore) -> None:
 def test_counters_add_up_and_ranges_are_inclusive(store: StateStore) -> None:
     store.apply(Delta(cells={("c1", 10): [1, 0, 0], ("c1", 11): [2, 1, 0]}))
     store.apply(Delta(cells={("c1", 11): [3, 0, 1], ("c1", 12): [1, 1, 1], ("c2", 11): [5, 5, 5]}))
-    got = store.read(ReadRequest(cells=["c1", "c3"], bucket_lo=11, bucket_hi=12))
+    got = store.read(ReadRequest(cells={"c1": 11, "c3": 11}, bucket_hi=12))
     assert got.cells == {"c1": {11: (5, 1, 1), 12: (1, 1, 1)}}
+    got = store.read(ReadRequest(cells={"c1": 12, "c2": 10}, bucket_hi=12))
+    assert got.cells == {"c1": {12: (1, 1, 1)}, "c2": {11: (5, 5, 5)}}
 
 
 def test_routes_sum_over_day_range(store: StateStore) -> None:
