@@ -267,3 +267,16 @@ def test_timestamp_columns_and_iso_text(tmp_path: Path) -> None:
     pq.write_table(naive, tmp_path / "naive.parquet")
     with pytest.raises(InputError, match="timestamp without a time zone"):
         replay_trips([tmp_path / "naive.parquet"], tmp_path / "t3.parquet")
+
+
+def test_gzipped_text_inputs(tmp_path: Path) -> None:
+    import gzip
+
+    rows = _rows()
+    plain = _write(rows, tmp_path / "in.jsonl")
+    with gzip.open(tmp_path / "in.jsonl.gz", "wb") as fh:
+        fh.write(plain.read_bytes())
+    a = replay_trips([plain], tmp_path / "a.parquet")
+    b = replay_trips([tmp_path / "in.jsonl.gz"], tmp_path / "b.parquet")
+    assert a.stats == b.stats and b.training_rows == 12
+    assert _digest(tmp_path / "a.parquet") == _digest(tmp_path / "b.parquet")
