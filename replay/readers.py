@@ -42,6 +42,7 @@ class Item:
     source: int  # index of the input file
     row: int  # 0-based row (line) number in that file
     value: Fix | Rejection
+    raw: bytes | None = None  # the line as read (JSON Lines), kept for dead letters
 
     @property
     def arrival_ms(self) -> int | None:
@@ -136,7 +137,8 @@ def iter_jsonl(path: Path, source: int, delay_ms: int | None) -> Iterator[Item]:
             raw = line.rstrip(b"\r\n")
             if not raw.strip():
                 continue
-            yield Item(source, row, _decode_line(raw, delay_ms))
+            value = _decode_line(raw, delay_ms)
+            yield Item(source, row, value, raw if isinstance(value, Fix) else None)
 
 
 def _decode_line(raw: bytes, delay_ms: int | None) -> Fix | Rejection:

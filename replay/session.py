@@ -71,7 +71,9 @@ class ReplaySession:
 
     def _apply(self, batch: list[Item]) -> None:
         while batch:
-            result = self.engine.process([it.value for it in batch], until=self.wants_event)
+            raws = {i: it.raw for i, it in enumerate(batch) if it.raw is not None}
+            result = self.engine.process([it.value for it in batch], raws=raws,
+                                         until=self.wants_event)
             for idx, rej in result.rejected:
                 if self.dead_letters is not None:
                     self.dead_letters(batch[idx], rej)

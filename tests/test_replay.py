@@ -82,7 +82,8 @@ def test_bit_for_bit_deterministic(tmp_path: Path) -> None:
 
 def test_dead_letters_lose_nothing(tmp_path: Path) -> None:
     rows = _rows()
-    rows.append(dict(rows[10]))  # an exact duplicate
+    again = dict(rows[10])
+    rows.append(again)  # an exact duplicate
     rows.sort(key=lambda r: r["arrival_ts"])
     broken = [b"{oops", b"[]", b'{"vehicle_id": "x", "event_ts": 1780272000, "lat": 95, '
               b'"lon": 1, "status": "vacant", "arrival_ts": 1780272001}']
@@ -97,6 +98,9 @@ def test_dead_letters_lose_nothing(tmp_path: Path) -> None:
                                                "malformed"]
     raws = {d["raw"] for d in dl}
     assert set(broken) <= raws
+    dup = next(d for d in dl if d["reason"] == "duplicate")
+    line = json.dumps({k: v for k, v in again.items() if v is not None}).encode()
+    assert dup["raw"] == line  # the duplicate's own line, byte for byte
 
 
 def test_unsorted_input_needs_sort(tmp_path: Path) -> None:
