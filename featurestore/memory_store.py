@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 from collections import deque
-from collections.abc import Collection, Mapping
+from collections.abc import Callable, Collection, Mapping
+from typing import Any
 
 from featurestore.state import VehicleState
 from featurestore.store import (
@@ -18,6 +19,17 @@ from featurestore.store import (
 )
 
 _PRUNE_EVERY = 256
+
+
+def _drop_old(groups: dict, too_old: Callable[[Any, Any], bool]) -> None:
+    """In a dict of dicts, delete inner entries for which ``too_old(key, value)``, then empty
+    groups."""
+    for g in list(groups):
+        inner = groups[g]
+        for k in [k for k, v in inner.items() if too_old(k, v)]:
+            del inner[k]
+        if not inner:
+            del groups[g]
 
 
 class MemoryStore:
@@ -78,24 +90,9 @@ class MemoryStore:
 
     def prune(self, keep: Retention) -> None:
         """Forget entries older than the retention horizons."""
-        for cell in list(self._cells):
-            buckets = self._cells[cell]
-            for b in [b for b in buckets if b < keep.bucket_min]:
-                del buckets[b]
-            if not buckets:
-                del self._cells[cell]
-        for key in list(self._routes):
-            days = self._routes[key]
-            for d in [d for d in days if d < keep.route_day_min]:
-                del days[d]
-            if not days:
-                del self._routes[key]
-        for key in list(self._presence):
-            members = self._presence[key]
-            for v in [v for v, e in members.items() if e < keep.presence_min_event_ms]:
-                del members[v]
-            if not members:
-                del self._presence[key]
+        _drop_old(self._cells, lambda b, _v: b < keep.bucket_min)
+        _drop_old(self._routes, lambda day, _v: day < keep.route_day_min)
+        _drop_old(self._presence, lambda _v, ev: ev < keep.presence_min_event_ms)
         for v in [v for v, s in self._vehicles.items() if s.seen_ms < keep.vehicle_min_seen_ms]:
             del self._vehicles[v]
 
