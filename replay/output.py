@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -29,12 +30,17 @@ def output_format(path: str | Path, fmt: str | None) -> str:
 
 
 class TableWriter:
-    """Streams rows (dicts) to Parquet or CSV in chunks, with a fixed schema."""
+    """Streams rows (dicts) to Parquet or CSV in chunks, with a fixed schema.
+
+    Writes to a temporary sibling file that replaces ``path`` only on ``close()``; ``abort()``
+    removes it, so a failed run never leaves a partial training set behind.
+    """
 
     def __init__(self, path: str | Path, schema: pa.Schema, fmt: str = "parquet",
                  chunk_rows: int = 8192) -> None:
-        self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.final = Path(path)
+        self.final.parent.mkdir(parents=True, exist_ok=True)
+        self.path = self.final.with_name(f".{self.final.name}.{os.getpid()}.partial")
         self.schema = schema
         self.fmt = fmt
         self.chunk_rows = chunk_rows
@@ -65,12 +71,22 @@ class TableWriter:
     def close(self) -> None:
         self.flush()
         self._writer.close()
+        os.replace(self.path, self.final)
+
+    def abort(self) -> None:
+        try:
+            self._writer.close()
+        finally:
+            self.path.unlink(missing_ok=True)
 
     def __enter__(self) -> TableWriter:
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+    def __exit__(self, exc_type: object, *exc: object) -> None:
+        if exc_type is None:
+            self.close()
+        else:
+            self.abort()
 
 
 DEAD_LETTER_SCHEMA = pa.schema([

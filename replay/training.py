@@ -73,8 +73,11 @@ class DeadLetterFile:
             "raw": rej.raw,
         })
 
-    def close(self) -> None:
-        self.writer.close()
+    def close(self, ok: bool = True) -> None:
+        if ok:
+            self.writer.close()
+        else:
+            self.writer.abort()
 
 
 def read_table(path: str | Path) -> pa.Table:
@@ -202,11 +205,13 @@ def replay_labels(inputs: Sequence[str | Path], labels: str | Path, out: str | P
                     [r for r in routes if r.origin_cell is not None and r.dest_cell is not None],
                     _label_answer(rows, vids, cells, routes, results))
     summary = ReplaySummary(out=str(out), dead_letters=str(dead_letters) if dead_letters else None)
+    ok = False
     try:
         _run(session, inputs, assume_delay_s, sort, progress, summary)
+        ok = True
     finally:
         if dlf is not None:
-            dlf.close()
+            dlf.close(ok)
     schema = pa.schema(list(table.schema) + feature_fields(feats))
     out_table = table
     for f in feats:
@@ -321,12 +326,17 @@ def replay_trips(inputs: Sequence[str | Path], out: str | Path, *,
     session.on_batch = batch_done
     if prepare is not None:
         prepare(session)  # e.g. extra as-of queries of the caller's own
+    ok = False
     try:
         _run(session, inputs, assume_delay_s, sort, progress, summary)
+        ok = True
     finally:
-        writer.close()
+        if ok:
+            writer.close()
+        else:
+            writer.abort()
         if dlf is not None:
-            dlf.close()
+            dlf.close(ok)
     summary.training_rows = writer.count
     summary.skipped["incomplete_at_end"] += len(snapshots)
     return summary

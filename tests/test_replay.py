@@ -284,3 +284,12 @@ def test_gzipped_text_inputs(tmp_path: Path) -> None:
     b = replay_trips([tmp_path / "in.jsonl.gz"], tmp_path / "b.parquet")
     assert a.stats == b.stats and b.training_rows == 12
     assert _digest(tmp_path / "a.parquet") == _digest(tmp_path / "b.parquet")
+
+
+def test_failed_replay_leaves_no_partial_files(tmp_path: Path) -> None:
+    rows = _rows(vehicles=2, n=30_000)  # more than one sort run (50,000 rows)
+    # the first 50,000 rows are in order and stream through; the next goes back in time
+    src = _write(rows[10_000:] + rows[:10_000], tmp_path / "in.jsonl")
+    with pytest.raises(OrderError, match="row 50001"):
+        replay_trips([src], tmp_path / "t.parquet", dead_letters=tmp_path / "d.parquet")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.jsonl"]
