@@ -9,7 +9,7 @@ import dataclasses
 import functools
 import os
 from collections.abc import Mapping
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, fields
 from typing import Any
 
 ENV_PREFIX = "CELLPULSE_"
@@ -34,7 +34,6 @@ class EngineConfig:
     route_days: int = 28
     vehicle_ttl_s: float = 6 * 3600.0
     city_tz: str = "UTC"
-    extra: Mapping[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
     def __post_init__(self) -> None:
         problems = []
@@ -100,8 +99,6 @@ class EngineConfig:
         """The parameters as plain JSON values (for the catalog and reports)."""
         out = {}
         for f in fields(self):
-            if f.name == "extra":
-                continue
             v = getattr(self, f.name)
             out[f.name] = list(v) if isinstance(v, tuple) else v
         return out
@@ -120,22 +117,10 @@ def _parse(kind: type, text: str) -> Any:
     return text
 
 
+# Field name -> parser kind, from the declared annotations (strings under __future__).
 _KINDS: dict[str, type] = {
-    "cell_resolution": int,
-    "route_resolution": int,
-    "bucket_s": int,
-    "windows_min": tuple,
-    "ring_window_min": int,
-    "max_delay_s": float,
-    "clock_skew_s": float,
-    "earth_radius_m": float,
-    "moving_step_m": float,
-    "heading_steps": int,
-    "trip_initial_fixes": int,
-    "now_horizon_s": float,
-    "route_days": int,
-    "vehicle_ttl_s": float,
-    "city_tz": str,
+    f.name: {"int": int, "float": float, "str": str}.get(str(f.type), tuple)
+    for f in fields(EngineConfig)
 }
 
 
