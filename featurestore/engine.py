@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from featurestore.config import EngineConfig
 from featurestore.schema import DUPLICATE, FROM_FUTURE, TOO_LATE, Fix, Rejection, row_raw
 from featurestore.state import VehicleState
-from featurestore.store import Delta, PresenceMove, Retention, StateStore
+from featurestore.store import Delta, PresenceMove, Retention, SourceSpan, StateStore
 from featurestore.transitions import DAY_MS, CompletedTrip, advance
 
 
@@ -102,10 +102,12 @@ class Engine:
         self,
         items: Iterable[Fix | Rejection],
         raws: Mapping[int, bytes] | None = None,
-        offsets: Mapping[str, int] | None = None,
+        spans: Mapping[str, SourceSpan] | None = None,
         until: Callable[[TripEvent], bool] | None = None,
     ) -> BatchResult:
-        """Process one batch in order. ``raws`` maps batch index -> raw bytes for dead letters.
+        """Process one batch in order. ``raws`` maps batch index -> raw bytes for dead letters;
+        ``spans`` the source partitions' offsets the batch covers (stored with its state, in
+        the same atomic step; the store raises StaleBatchError if they were applied already).
 
         With ``until``, processing stops once a trip event satisfies it and every following
         message of the same arrival time is done; ``BatchResult.consumed`` says how many
@@ -202,10 +204,11 @@ class Engine:
             ):
                 delta.presence[vid] = PresenceMove(
                     old.cell if old else None, old.status if old else None,
-                    new.cell, new.status, new.event_ms,
+                    new.cell, new.status, new.event_ms, new.arrival_ms,
+                    old.event_ms if old else None, old.arrival_ms if old else None,
                 )
-        if offsets:
-            delta.offsets.update(offsets)
+        if spans:
+            delta.spans.update(spans)
         if wm is not None:
             delta.watermark_ms = wm
             delta.retention = self.retention(wm)

@@ -15,7 +15,10 @@ from featurestore.store import (
     ReadResult,
     Retention,
     RouteLogEntry,
+    SourcePosition,
     VehicleLogEntry,
+    check_spans,
+    merge_position,
 )
 
 _PRUNE_EVERY = 256
@@ -48,7 +51,8 @@ class MemoryStore:
         self._cells: dict[str, dict[int, list[int]]] = {}
         self._routes: dict[tuple[str, str, int], dict[int, list[int]]] = {}
         self._presence: dict[tuple[str, str], dict[str, int]] = {}
-        self._offsets: dict[str, int] = {}
+        self._positions: dict[str, SourcePosition] = {}
+        self._highwaters: dict[str, int] = {}
         self._watermark: int | None = None
         self._applies = 0
 
@@ -58,6 +62,7 @@ class MemoryStore:
         return {v: got[v] for v in vehicle_ids if v in got}
 
     def apply(self, delta: Delta) -> None:
+        check_spans(self._positions, delta.spans)
         self._vehicles.update(delta.vehicles)
         for (cell, bucket), inc in delta.cells.items():
             row = self._cells.setdefault(cell, {}).setdefault(bucket, [0, 0, 0])
@@ -75,7 +80,8 @@ class MemoryStore:
                 if old is not None:
                     old.pop(vid, None)
             self._presence.setdefault((move.cell, move.status), {})[vid] = move.event_ms
-        self._offsets.update(delta.offsets)
+        for part, span in delta.spans.items():
+            self._positions[part] = merge_position(self._positions.get(part), span)
         if delta.watermark_ms is not None:
             self._watermark = max(self._watermark or delta.watermark_ms, delta.watermark_ms)
         if self.history_ms:
@@ -107,13 +113,18 @@ class MemoryStore:
         t = request.as_of_ms
         wm = self._watermark
         if t is None or wm is None or t >= wm:
-            return self._read_now(request)
-        if not self.history_ms or t < wm - self.history_ms:
+            out = self._read_now(request)
+        elif not self.history_ms or t < wm - self.history_ms:
             raise AsOfError(
                 f"as of {t} ms is before what this store can answer: its watermark is {wm} ms "
                 f"and it keeps {self.history_ms} ms of history"
             )
-        return self._read_past(request, t)
+        else:
+            out = self._read_past(request, t)
+        if request.with_progress:
+            out.positions = dict(self._positions)
+            out.highwaters = dict(self._highwaters)
+        return out
 
     def _read_past(self, request: ReadRequest, t: int) -> ReadResult:
         """Current values minus every change that arrived after ``t``."""
@@ -198,7 +209,16 @@ class MemoryStore:
         return self._watermark
 
     def offsets(self) -> Mapping[str, int]:
-        return dict(self._offsets)
+        return {p: pos.next_offset for p, pos in self._positions.items()}
+
+    def positions(self) -> Mapping[str, SourcePosition]:
+        return dict(self._positions)
+
+    def set_highwaters(self, ends: Mapping[str, int]) -> None:
+        self._highwaters.update(ends)
+
+    def highwaters(self) -> dict[str, int]:
+        return dict(self._highwaters)
 
     # --- introspection (reports, tests) ------------------------------------------------
     def sizes(self) -> dict[str, int]:

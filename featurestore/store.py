@@ -26,13 +26,44 @@ RouteDayKey = tuple[str, str, int, int]  # RouteKey + day of the dropoff's arriv
 
 @dataclass(frozen=True, slots=True)
 class PresenceMove:
-    """A vehicle's latest in-order fix moved: leave (old cell, old status), enter the new ones."""
+    """A vehicle's latest in-order fix moved: leave (old cell, old status), enter the new ones.
+
+    ``arrival_ms`` is when the new position became known; ``old_event_ms`` and
+    ``old_arrival_ms`` identify the entry being left (stores that keep presence intervals
+    need them).
+    """
 
     old_cell: str | None
     old_status: str | None
     cell: str
     status: str
     event_ms: int
+    arrival_ms: int = 0
+    old_event_ms: int | None = None
+    old_arrival_ms: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class SourceSpan:
+    """The records of one source partition in a batch: offsets ``first_offset`` up to (not
+    including) ``next_offset``, the latest arrival among them."""
+
+    first_offset: int
+    next_offset: int
+    last_arrival_ms: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class SourcePosition:
+    """What a store has applied of one source partition."""
+
+    next_offset: int
+    last_arrival_ms: int | None
+
+
+class StaleBatchError(RuntimeError):
+    """A batch starts before what the store has already applied for one of its partitions
+    (another consumer applied it): nothing of the batch was written."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -70,13 +101,13 @@ class Delta:
     presence: dict[str, PresenceMove] = field(default_factory=dict)
     watermark_ms: int | None = None
     retention: Retention | None = None
-    offsets: dict[str, int] = field(default_factory=dict)  # source partition -> next offset
+    spans: dict[str, SourceSpan] = field(default_factory=dict)  # source partition -> span
     cell_log: list[CellLogEntry] = field(default_factory=list)
     route_log: list[RouteLogEntry] = field(default_factory=list)
     vehicle_log: list[VehicleLogEntry] = field(default_factory=list)
 
     def is_empty(self) -> bool:
-        return not (self.vehicles or self.cells or self.routes or self.presence or self.offsets)
+        return not (self.vehicles or self.cells or self.routes or self.presence or self.spans)
 
 
 @dataclass(frozen=True, slots=True)
@@ -92,6 +123,7 @@ class ReadRequest:
     day_lo: int = 0  # inclusive
     day_hi: int = -1  # inclusive
     as_of_ms: int | None = None  # None: the current state; else what was known at that time
+    with_progress: bool = False  # also return the source positions and end offsets
 
 
 @dataclass(slots=True)
@@ -103,6 +135,8 @@ class ReadResult:
     presence: dict[str, tuple[int, int]] = field(default_factory=dict)  # (vacant, occupied)
     routes: dict[RouteKey, tuple[int, int, int]] = field(default_factory=dict)
     watermark_ms: int | None = None
+    positions: dict[str, SourcePosition] | None = None  # with_progress only
+    highwaters: dict[str, int] | None = None  # with_progress only: partition -> end offset
 
 
 @runtime_checkable
@@ -120,7 +154,11 @@ class StateStore(Protocol):
         ...
 
     def apply(self, delta: Delta) -> None:
-        """Apply a whole batch atomically: counters, vehicles, presence, offsets, watermark."""
+        """Apply a whole batch atomically: counters, vehicles, presence, offsets, watermark.
+
+        Raises StaleBatchError, writing nothing, when a span starts before the stored next
+        offset of its partition.
+        """
         ...
 
     def read(self, request: ReadRequest) -> ReadResult:
@@ -134,3 +172,34 @@ class StateStore(Protocol):
     def offsets(self) -> Mapping[str, int]:
         """Source partition -> next offset to apply, as stored with the state."""
         ...
+
+    def positions(self) -> Mapping[str, SourcePosition]:
+        """Source partition -> next offset and latest arrival applied."""
+        ...
+
+    def set_highwaters(self, ends: Mapping[str, int]) -> None:
+        """Record source partitions' end offsets as their consumer last saw them."""
+        ...
+
+    def highwaters(self) -> dict[str, int]:
+        """Source partition -> end offset, as last recorded."""
+        ...
+
+
+def check_spans(stored: Mapping[str, SourcePosition], spans: Mapping[str, SourceSpan]) -> None:
+    """Raise StaleBatchError when a span starts before what is stored for its partition."""
+    for part, span in spans.items():
+        pos = stored.get(part)
+        if pos is not None and pos.next_offset > span.first_offset:
+            raise StaleBatchError(
+                f"partition {part}: batch starts at offset {span.first_offset} but offsets up to "
+                f"{pos.next_offset - 1} are already applied"
+            )
+
+
+def merge_position(old: SourcePosition | None, span: SourceSpan) -> SourcePosition:
+    """The stored position after applying ``span``."""
+    last = span.last_arrival_ms
+    if old is not None and old.last_arrival_ms is not None:
+        last = old.last_arrival_ms if last is None else max(last, old.last_arrival_ms)
+    return SourcePosition(span.next_offset, last)

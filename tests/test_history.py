@@ -41,7 +41,21 @@ def day(tmp_path_factory: pytest.TempPathFactory) -> list:
     return list(arrival_order(iter_file(path)))
 
 
-def test_past_reads_equal_replay_at_that_moment(day: list) -> None:
+def _history_store(kind: str, request: pytest.FixtureRequest):
+    if kind == "memory":
+        return MemoryStore(history_ms=10**12)
+    from featurestore.redis_store import RedisStore
+
+    if kind == "fakeredis":
+        import fakeredis
+
+        return RedisStore(fakeredis.FakeRedis(), history_ms=10**12)
+    return RedisStore.from_url(request.getfixturevalue("redis_url"), history_ms=10**12)
+
+
+@pytest.mark.parametrize("kind", ["memory", "fakeredis", "redis"])
+def test_past_reads_equal_replay_at_that_moment(day: list, kind: str,
+                                                request: pytest.FixtureRequest) -> None:
     fixes = [it.value for it in day if isinstance(it.value, Fix)]
     vehicles = sorted({f.vehicle_id for f in fixes})
     first, last = fixes[0].arrival_ms, fixes[-1].arrival_ms
@@ -49,7 +63,7 @@ def test_past_reads_equal_replay_at_that_moment(day: list) -> None:
     moments = sorted(rng.randrange(first, last) for _ in range(12)) + [
         fixes[len(fixes) // 2].arrival_ms, fixes[len(fixes) // 2].arrival_ms - 1]
     # the keys: every vehicle, a spread of cells, and the routes trips completed on
-    store = MemoryStore(history_ms=10**12)
+    store = _history_store(kind, request)
     eng = Engine(store)
     i = 0
     while i < len(day):  # batches of random size, as a consumer would poll them
@@ -58,7 +72,9 @@ def test_past_reads_equal_replay_at_that_moment(day: list) -> None:
         i += n
     cells = sorted({h3.latlng_to_cell(f.lat, f.lon, 8) for f in fixes})
     cells = rng.sample(cells, 40)
-    route_keys = [tuple(k.split("|")) for k in store.dump()["routes"]]
+    oracle = MemoryStore()
+    Engine(oracle).process([it.value for it in day])
+    route_keys = [tuple(k.split("|")) for k in oracle.dump()["routes"]]
     rq = [RouteQuery(o, d, int(h)) for o, d, h in route_keys][:20]
     rq.append(RouteQuery(route_keys[0][0], route_keys[0][1]))  # the hour of T
     assert len(rq) >= 5

@@ -1,4 +1,5 @@
-"""One suite for every StateStore implementation (the Redis store joins the parameter list)."""
+"""One suite for every StateStore implementation: in memory, Redis on fakeredis, and Redis on a
+real ``redis-server`` (started by the tests), each without and with history."""
 
 from __future__ import annotations
 
@@ -7,18 +8,51 @@ from collections.abc import Callable
 import pytest
 
 from featurestore.memory_store import MemoryStore
+from featurestore.redis_store import RedisStore
 from featurestore.state import TripState, VehicleState
-from featurestore.store import Delta, PresenceMove, ReadRequest, Retention, StateStore
+from featurestore.store import (
+    Delta,
+    PresenceMove,
+    ReadRequest,
+    Retention,
+    SourcePosition,
+    SourceSpan,
+    StaleBatchError,
+    StateStore,
+)
 
-STORES: dict[str, Callable[[], StateStore]] = {
-    "memory": MemoryStore,
-    "memory-history": lambda: MemoryStore(history_ms=3_600_000),
+HOUR = 3_600_000
+
+
+def _fake(history_ms: int) -> Callable[[pytest.FixtureRequest], StateStore]:
+    def make(_: pytest.FixtureRequest) -> StateStore:
+        import fakeredis
+
+        return RedisStore(fakeredis.FakeRedis(), history_ms=history_ms)
+
+    return make
+
+
+def _real(history_ms: int) -> Callable[[pytest.FixtureRequest], StateStore]:
+    def make(request: pytest.FixtureRequest) -> StateStore:
+        return RedisStore.from_url(request.getfixturevalue("redis_url"), history_ms=history_ms)
+
+    return make
+
+
+STORES: dict[str, Callable[[pytest.FixtureRequest], StateStore]] = {
+    "memory": lambda _: MemoryStore(),
+    "memory-history": lambda _: MemoryStore(history_ms=HOUR),
+    "fakeredis": _fake(0),
+    "fakeredis-history": _fake(HOUR),
+    "redis": _real(0),
+    "redis-history": _real(HOUR),
 }
 
 
 @pytest.fixture(params=sorted(STORES))
 def store(request: pytest.FixtureRequest) -> StateStore:
-    return STORES[request.param]()
+    return STORES[request.param](request)
 
 
 def _vehicle(vid: str, ev: int, cell: str = "88c19cbb27fffff", status: str = "vacant",
@@ -61,21 +95,51 @@ def test_routes_sum_over_day_range(store: StateStore) -> None:
 
 
 def test_presence_moves_between_cells(store: StateStore) -> None:
-    store.apply(Delta(presence={"a": PresenceMove(None, None, "c1", "vacant", 1000),
-                                "b": PresenceMove(None, None, "c1", "occupied", 2000)}))
-    req = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=1000)
+    store.apply(Delta(presence={"a": PresenceMove(None, None, "c1", "vacant", 1000, 1100),
+                                "b": PresenceMove(None, None, "c1", "occupied", 2000, 2100)}))
+    req = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=1000, as_of_ms=2100)
     assert store.read(req).presence == {"c1": (1, 1), "c2": (0, 0)}
-    store.apply(Delta(presence={"a": PresenceMove("c1", "vacant", "c2", "occupied", 3000)}))
+    store.apply(Delta(presence={"a": PresenceMove("c1", "vacant", "c2", "occupied", 3000, 3100,
+                                                  1000, 1100)}))
+    req = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=1000, as_of_ms=3100)
     assert store.read(req).presence == {"c1": (0, 1), "c2": (0, 1)}
-    req2 = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=2001)
+    req2 = ReadRequest(presence_cells=["c1", "c2"], presence_min_event_ms=2001, as_of_ms=3100)
     assert store.read(req2).presence == {"c1": (0, 0), "c2": (0, 1)}
 
 
 def test_watermark_and_offsets_move_with_the_batch(store: StateStore) -> None:
-    store.apply(Delta(cells={("c", 1): [1, 0, 0]}, watermark_ms=5000, offsets={"fixes:0": 11}))
-    store.apply(Delta(watermark_ms=4000, offsets={"fixes:1": 3}))
+    store.apply(Delta(cells={("c", 1): [1, 0, 0]}, watermark_ms=5000,
+                      spans={"fixes:0": SourceSpan(0, 11, 5000)}))
+    store.apply(Delta(watermark_ms=4000, spans={"fixes:1": SourceSpan(0, 3, 4000)}))
     assert store.watermark_ms() == 5000
     assert dict(store.offsets()) == {"fixes:0": 11, "fixes:1": 3}
+    assert dict(store.positions()) == {"fixes:0": SourcePosition(11, 5000),
+                                       "fixes:1": SourcePosition(3, 4000)}
+    store.set_highwaters({"fixes:0": 11, "fixes:1": 9})
+    assert store.highwaters() == {"fixes:0": 11, "fixes:1": 9}
+    got = store.read(ReadRequest(as_of_ms=6000, with_progress=True))
+    assert got.highwaters == {"fixes:0": 11, "fixes:1": 9}
+    assert got.positions == {"fixes:0": SourcePosition(11, 5000),
+                             "fixes:1": SourcePosition(3, 4000)}
+
+
+def test_a_batch_already_applied_is_refused_whole(store: StateStore) -> None:
+    v = _vehicle("a", 1_000_000)
+    store.apply(Delta(cells={("c", 1): [1, 0, 0]}, vehicles={"a": v}, watermark_ms=100,
+                      spans={"p:0": SourceSpan(0, 10, 100)}))
+    stale = Delta(cells={("c", 1): [5, 5, 5]}, vehicles={"a": _vehicle("a", 2_000_000)},
+                  watermark_ms=200, spans={"p:1": SourceSpan(0, 1, 200),
+                                           "p:0": SourceSpan(9, 12, 200)})
+    with pytest.raises(StaleBatchError, match="p:0"):
+        store.apply(stale)
+    # nothing of the refused batch was written
+    assert store.read(ReadRequest(cells={"c": 1}, bucket_hi=1, as_of_ms=100)).cells == {
+        "c": {1: (1, 0, 0)}}
+    assert store.load_vehicles(["a"]) == {"a": v}
+    assert dict(store.offsets()) == {"p:0": 10} and store.watermark_ms() == 100
+    store.apply(Delta(spans={"p:0": SourceSpan(10, 12, 150)}, watermark_ms=150))  # continues
+    store.apply(Delta(spans={"p:0": SourceSpan(15, 16, 140)}))  # a gap (compacted) is fine
+    assert dict(store.positions()) == {"p:0": SourcePosition(16, 150)}
 
 
 def test_prune_forgets_only_before_horizons() -> None:

@@ -1,0 +1,427 @@
+"""How engine state lies in Redis: key names, a batch as a list of write operations, and a read
+as a list of commands with the parser of their replies.
+
+Pure functions, no Redis import: ``featurestore.redis_store`` sends what these build (writes
+through one Lua script, so a batch and its offsets land in one atomic step; reads through one
+MULTI/EXEC round trip, so a read is a consistent snapshot).
+
+Keys (``P`` is the store's namespace; ``{...}`` is a hash tag, so one vehicle's keys, one cell's
+keys and one route's keys each share a Redis Cluster slot):
+
+=============================  ======  ==========================================================
+``P:v:{vid}``                  string  the vehicle's state (JSON)
+``P:vl:{vid}``                 zset    history: the state before each accepted fix, by arrival
+``P:c:{cell}:BLOCK``           hash    counters ``f<bucket>``, ``p<bucket>``, ``d<bucket>`` of
+                                       one block of buckets (block = longest window)
+``P:cl:{cell}``                zset    history: each fix's counter increments, by arrival
+``P:pv:{cell}``, ``P:po:{cell}`` zset  presence intervals of vacant / occupied vehicles
+``P:r:{o.d}:HOUR``             hash    route sums ``n<day>``, ``s<day>``, ``q<day>``
+``P:rl:{o.d}:HOUR``            zset    history: each completed trip, by arrival
+``P:pos``, ``P:arr``           hash    per source partition: next offset, latest arrival applied
+``P:hw``                       hash    per source partition: end offset seen by its consumer
+``P:meta``                     hash    ``wm``: the watermark (latest arrival applied)
+=============================  ======  ==========================================================
+
+Presence is kept as intervals so that it can be read as of an earlier moment: member
+``vid|event_ms|arrival_ms`` (the vehicle's latest in-order fix and when it became known) with
+score ``min(arrival it was superseded, event_ms + now horizon + 1)``. A vehicle counts at T
+when its member's score is > T and its arrival is <= T.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass
+
+import orjson
+
+from featurestore.config import EngineConfig
+from featurestore.state import VehicleState
+from featurestore.store import (
+    Delta,
+    ReadRequest,
+    ReadResult,
+    RouteKey,
+    SourcePosition,
+)
+from featurestore.transitions import DAY_MS
+
+PRESENCE_STATUSES = {"vacant": "pv", "occupied": "po"}  # offline vehicles are never counted
+
+Op = tuple[str, ...]  # an operation of the apply script: opcode and string arguments
+Command = tuple[str | int | float, ...]
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Key names and key lifetimes for one namespace and engine configuration."""
+
+    config: EngineConfig
+    namespace: str = "cellpulse"
+    history_ms: int = 0
+    ttl_margin_s: int = 600
+
+    # --- keys --------------------------------------------------------------------------
+    @property
+    def block_buckets(self) -> int:
+        return self.config.longest_window_buckets
+
+    def vehicle(self, vid: str) -> str:
+        return f"{self.namespace}:v:{{{vid}}}"
+
+    def vehicle_log(self, vid: str) -> str:
+        return f"{self.namespace}:vl:{{{vid}}}"
+
+    def cell_block(self, cell: str, block: int) -> str:
+        return f"{self.namespace}:c:{{{cell}}}:{block}"
+
+    def cell_log(self, cell: str) -> str:
+        return f"{self.namespace}:cl:{{{cell}}}"
+
+    def presence(self, cell: str, status: str) -> str:
+        return f"{self.namespace}:{PRESENCE_STATUSES[status]}:{{{cell}}}"
+
+    def route(self, key: RouteKey) -> str:
+        o, d, h = key
+        return f"{self.namespace}:r:{{{o}.{d}}}:{h}"
+
+    def route_log(self, key: RouteKey) -> str:
+        o, d, h = key
+        return f"{self.namespace}:rl:{{{o}.{d}}}:{h}"
+
+    @property
+    def positions(self) -> str:
+        return f"{self.namespace}:pos"
+
+    @property
+    def arrivals(self) -> str:
+        return f"{self.namespace}:arr"
+
+    @property
+    def highwaters(self) -> str:
+        return f"{self.namespace}:hw"
+
+    @property
+    def meta(self) -> str:
+        return f"{self.namespace}:meta"
+
+    # --- lifetimes (seconds; refreshed on every write of the key) ------------------------
+    def _ttl(self, span_ms: float) -> int:
+        return math.ceil((span_ms + self.history_ms) / 1000) + self.ttl_margin_s
+
+    @property
+    def vehicle_ttl_s(self) -> int:
+        return self._ttl(self.config.vehicle_ttl_ms)
+
+    @property
+    def log_ttl_s(self) -> int:
+        return self._ttl(self.config.max_delay_ms)
+
+    @property
+    def cell_ttl_s(self) -> int:
+        # a block is written until its end plus the maximum delay, and read until its end plus
+        # the longest window (plus the history kept)
+        cfg = self.config
+        block_ms = self.block_buckets * cfg.bucket_ms
+        return self._ttl(block_ms + cfg.longest_window_buckets * cfg.bucket_ms + cfg.max_delay_ms)
+
+    @property
+    def presence_ttl_s(self) -> int:
+        return self._ttl(self.config.now_horizon_ms + self.config.max_delay_ms)
+
+    @property
+    def route_ttl_s(self) -> int:
+        return self._ttl((self.config.route_days + 1) * DAY_MS)
+
+
+def presence_member(vid: str, event_ms: int, arrival_ms: int) -> str:
+    return f"{vid}|{event_ms}|{arrival_ms}"
+
+
+def _state_json(state: VehicleState | None) -> str:
+    return "-" if state is None else orjson.dumps(state.to_dict()).decode()
+
+
+def _parse_state(raw: bytes | str | None) -> VehicleState | None:
+    if raw is None or raw in (b"-", "-"):
+        return None
+    return VehicleState.from_dict(orjson.loads(raw))
+
+
+# ------------------------------------------------------------------------------------------
+# Writes
+# ------------------------------------------------------------------------------------------
+def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], list[Op]]:
+    """The apply script's arguments for one batch: span checks, then write operations.
+
+    Opcodes: ``I`` key field n (HINCRBY), ``S`` key value ttl (SET EX), ``Z`` key score
+    member (ZADD), ``X`` key score member (ZADD XX), ``R`` key member (ZREM), ``T`` key max
+    (ZREMRANGEBYSCORE -inf max), ``P`` key min (delete hash fields whose number is < min),
+    ``E`` key ttl (EXPIRE), ``H`` key field value (HSET), ``M`` key field value (HSET when
+    greater than the stored number).
+    """
+    checks: list[str] = []
+    for part, span in sorted(delta.spans.items()):
+        checks += [part, str(span.first_offset)]
+    ops: list[Op] = []
+    ttl: dict[str, int] = {}
+    cfg = layout.config
+    horizon = cfg.now_horizon_ms
+    hist = layout.history_ms > 0
+
+    for vid, state in delta.vehicles.items():
+        ops.append(("S", layout.vehicle(vid), _state_json(state), str(layout.vehicle_ttl_s)))
+
+    bb = layout.block_buckets
+    for (cell, bucket), (f, p, d) in delta.cells.items():
+        key = layout.cell_block(cell, bucket // bb)
+        for name, n in (("f", f), ("p", p), ("d", d)):
+            if n:
+                ops.append(("I", key, f"{name}{bucket}", str(n)))
+        ttl[key] = layout.cell_ttl_s
+
+    route_days_min = delta.retention.route_day_min if delta.retention is not None else None
+    for (o, dd, h, day), (n, s1, s2) in delta.routes.items():
+        key = layout.route((o, dd, h))
+        ops += [("I", key, f"n{day}", str(n)), ("I", key, f"s{day}", str(s1)),
+                ("I", key, f"q{day}", str(s2))]
+        if route_days_min is not None:
+            ops.append(("P", key, str(route_days_min)))
+        ttl[key] = layout.route_ttl_s
+
+    # Presence: per fix where the history log has the fixes (intervals closed at the arrival
+    # that superseded them), else the batch's net move per vehicle.
+    def leave(vid: str, cell: str | None, status: str | None, ev: int | None,
+              arr: int | None, at: int) -> None:
+        if cell is None or status not in PRESENCE_STATUSES or ev is None or arr is None:
+            return
+        key = layout.presence(cell, status)  # type: ignore[arg-type]
+        member = presence_member(vid, ev, arr)
+        if hist:
+            ops.append(("X", key, str(min(at, ev + horizon + 1)), member))
+        else:
+            ops.append(("R", key, member))
+        ttl[key] = layout.presence_ttl_s
+
+    def enter(vid: str, cell: str, status: str, ev: int, arr: int) -> None:
+        if status not in PRESENCE_STATUSES:
+            return
+        key = layout.presence(cell, status)
+        ops.append(("Z", key, str(ev + horizon + 1), presence_member(vid, ev, arr)))
+        ttl[key] = layout.presence_ttl_s
+
+    chains = _vehicle_chains(delta) if hist else {}
+    for vid, chain in chains.items():
+        for arrival, before, after in chain:
+            ident = None if before is None else (before.cell, before.status, before.event_ms)
+            if ident == (after.cell, after.status, after.event_ms):
+                continue
+            if before is not None:
+                leave(vid, before.cell, before.status, before.event_ms, before.arrival_ms,
+                      arrival)
+            enter(vid, after.cell, after.status, after.event_ms, after.arrival_ms)
+    for vid, mv in delta.presence.items():
+        if vid not in chains:  # no per-fix log for it: the batch's net move
+            leave(vid, mv.old_cell, mv.old_status, mv.old_event_ms, mv.old_arrival_ms,
+                  mv.arrival_ms)
+            enter(vid, mv.cell, mv.status, mv.event_ms, mv.arrival_ms)
+
+    if hist:
+        for i, (arr, vid, before) in enumerate(delta.vehicle_log):
+            key = layout.vehicle_log(vid)
+            ops.append(("Z", key, str(arr), f"{arr}|{batch_id}.{i}|{_state_json(before)}"))
+            ttl[key] = layout.log_ttl_s
+        for i, (arr, cell, bucket, f, p, d) in enumerate(delta.cell_log):
+            key = layout.cell_log(cell)
+            ops.append(("Z", key, str(arr), f"{arr}|{batch_id}.{i}|{bucket}|{f}|{p}|{d}"))
+            ttl[key] = layout.log_ttl_s
+        for i, (arr, o, dd, h, day, dur) in enumerate(delta.route_log):
+            key = layout.route_log((o, dd, h))
+            ops.append(("Z", key, str(arr), f"{arr}|{batch_id}.{i}|{day}|{dur}"))
+            ttl[key] = layout.log_ttl_s
+
+    if delta.watermark_ms is not None:
+        # Forget what no answerable read needs: history before (watermark - history), and
+        # presence intervals that ended by then.
+        forget = delta.watermark_ms - layout.history_ms
+        for key in ttl:
+            kind = key[len(layout.namespace) + 1:].split(":", 1)[0]
+            if kind in ("vl", "cl", "rl"):
+                ops.append(("T", key, f"({forget}"))
+            elif kind in ("pv", "po"):
+                ops.append(("T", key, str(forget)))
+        ops.append(("M", layout.meta, "wm", str(delta.watermark_ms)))
+    for key, seconds in ttl.items():
+        ops.append(("E", key, str(seconds)))
+    for part, span in sorted(delta.spans.items()):
+        ops.append(("H", layout.positions, part, str(span.next_offset)))
+        if span.last_arrival_ms is not None:
+            ops.append(("M", layout.arrivals, part, str(span.last_arrival_ms)))
+    return checks, ops
+
+
+def _vehicle_chains(delta: Delta) -> dict[str, list[tuple[int, VehicleState | None,
+                                                           VehicleState]]]:
+    """Per vehicle, each accepted fix as (arrival, state before, state after)."""
+    seq: dict[str, list[tuple[int, VehicleState | None]]] = {}
+    for arr, vid, before in delta.vehicle_log:
+        seq.setdefault(vid, []).append((arr, before))
+    out: dict[str, list[tuple[int, VehicleState | None, VehicleState]]] = {}
+    for vid, steps in seq.items():
+        final = delta.vehicles[vid]
+        afters = [b for _, b in steps[1:]] + [final]
+        out[vid] = [(arr, before, after if after is not None else final)
+                    for (arr, before), after in zip(steps, afters, strict=True)]
+    return out
+
+
+def flatten(checks: list[str], ops: Iterable[Op]) -> list[str]:
+    """ARGV for the apply script: number of span checks, the checks, then the operations."""
+    argv = [str(len(checks) // 2), *checks]
+    for op in ops:
+        argv.extend(op)
+    return argv
+
+
+# ------------------------------------------------------------------------------------------
+# Reads
+# ------------------------------------------------------------------------------------------
+@dataclass
+class ReadPlan:
+    """Commands for one read and the function that turns their replies into a ReadResult."""
+
+    commands: list[Command]
+    parse: Callable[[list], ReadResult]
+
+
+def _num(v: bytes | str | None) -> int:
+    return 0 if v is None else int(v)
+
+
+def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int) -> ReadPlan:
+    """Commands answering ``request`` as of ``as_of_ms`` (history replies are subtracted; the
+    caller checks that ``as_of_ms`` is within the history the store keeps)."""
+    t = as_of_ms
+    hist = layout.history_ms > 0
+    after = f"({t}"
+    cmds: list[Command] = [("HGET", layout.meta, "wm")]
+    steps: list[Callable[[ReadResult, Iterable], None]] = []
+
+    def on(n: int, fn: Callable[..., None]) -> None:
+        steps.append(lambda out, it: fn(out, *[next(it) for _ in range(n)]))
+
+    for vid in dict.fromkeys(request.vehicles):
+        cmds.append(("GET", layout.vehicle(vid)))
+        if hist:
+            cmds.append(("ZRANGEBYSCORE", layout.vehicle_log(vid), after, "+inf",
+                         "LIMIT", 0, 1))
+
+        def vehicle(out: ReadResult, raw: bytes | None, log: list | None = None,
+                    vid: str = vid) -> None:
+            state = _parse_state(raw)
+            if log:  # the state before the first change after T is the state at T
+                state = _parse_state(log[0].split(b"|", 2)[2])
+            if state is not None:
+                out.vehicles[vid] = state
+
+        on(2 if hist else 1, vehicle)
+
+    bb = layout.block_buckets
+    hi = request.bucket_hi
+    for cell, lo in request.cells.items():
+        if hi < lo:
+            continue
+        blocks = []
+        for block in range(lo // bb, hi // bb + 1):
+            buckets = range(max(lo, block * bb), min(hi, block * bb + bb - 1) + 1)
+            blocks.append(buckets)
+            cmds.append(("HMGET", layout.cell_block(cell, block),
+                         *[f"{k}{b}" for b in buckets for k in "fpd"]))
+        if hist:
+            cmds.append(("ZRANGEBYSCORE", layout.cell_log(cell), after, "+inf"))
+
+        def cells(out: ReadResult, *replies: list, cell: str = cell, blocks: list = blocks,
+                  lo: int = lo) -> None:
+            got: dict[int, list[int]] = {}
+            for buckets, vals in zip(blocks, replies, strict=False):
+                for j, b in enumerate(buckets):
+                    f, p, d = vals[3 * j:3 * j + 3]
+                    if f is not None or p is not None or d is not None:
+                        got[b] = [_num(f), _num(p), _num(d)]
+            if len(replies) > len(blocks):
+                for entry in replies[-1]:
+                    _, _, b, f, p, d = entry.split(b"|")
+                    b = int(b)
+                    if lo <= b <= hi and b in got:
+                        row = got[b]
+                        row[0] -= int(f)
+                        row[1] -= int(p)
+                        row[2] -= int(d)
+            rows = {b: (r[0], r[1], r[2]) for b, r in got.items() if r != [0, 0, 0]}
+            if rows:
+                out.cells[cell] = rows
+
+        on(len(blocks) + (1 if hist else 0), cells)
+
+    m = request.presence_min_event_ms
+    for cell in dict.fromkeys(request.presence_cells):
+        for status in ("vacant", "occupied"):
+            cmds.append(("ZRANGEBYSCORE", layout.presence(cell, status), after, "+inf"))
+
+        def presence(out: ReadResult, vac: list, occ: list, cell: str = cell) -> None:
+            out.presence[cell] = (_present(vac, t, m), _present(occ, t, m))
+
+        on(2, presence)
+
+    dlo, dhi = request.day_lo, request.day_hi
+    days = range(dlo, dhi + 1)
+    for key in dict.fromkeys(request.routes):
+        if dhi < dlo:
+            continue
+        cmds.append(("HMGET", layout.route(key), *[f"{k}{d}" for d in days for k in "nsq"]))
+        if hist:
+            cmds.append(("ZRANGEBYSCORE", layout.route_log(key), after, "+inf"))
+
+        def route(out: ReadResult, vals: list, log: list | None = None,
+                  key: RouteKey = key) -> None:
+            n = sum(_num(v) for v in vals[0::3])
+            s1 = sum(_num(v) for v in vals[1::3])
+            s2 = sum(_num(v) for v in vals[2::3])
+            for entry in log or ():
+                _, _, day, dur = entry.split(b"|")
+                if dlo <= int(day) <= dhi:
+                    n -= 1
+                    s1 -= int(dur)
+                    s2 -= int(dur) ** 2
+            if n:
+                out.routes[key] = (n, s1, s2)
+
+        on(2 if hist else 1, route)
+
+    def parse(replies: list) -> ReadResult:
+        it = iter(replies)
+        wm = next(it)
+        out = ReadResult(watermark_ms=None if wm is None else int(wm))
+        for step in steps:
+            step(out, it)
+        return out
+
+    return ReadPlan(cmds, parse)
+
+
+def _present(members: list, t: int, min_event_ms: int) -> int:
+    n = 0
+    for m in members:
+        _, ev, arr = m.rsplit(b"|", 2)
+        if int(arr) <= t and int(ev) >= min_event_ms:
+            n += 1
+    return n
+
+
+def parse_positions(next_offsets: Mapping, arrivals: Mapping) -> dict[str, SourcePosition]:
+    def s(x: bytes | str) -> str:
+        return x.decode() if isinstance(x, bytes) else x
+
+    arr = {s(k): int(v) for k, v in arrivals.items()}
+    return {s(k): SourcePosition(int(v), arr.get(s(k))) for k, v in next_offsets.items()}

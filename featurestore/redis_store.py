@@ -1,0 +1,200 @@
+"""The Redis state store: the live path's shared state, behind the same interface as MemoryStore.
+
+Every batch is one Lua script call (atomic: its state changes and the source offsets it
+applied land together or not at all); every read is one MULTI/EXEC round trip. Key layout,
+lifetimes and the encoding of writes and reads live in ``featurestore.redis_layout``.
+Works with redis-py clients for a real server and for fakeredis.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Collection, Mapping
+from typing import Any
+
+from featurestore.config import EngineConfig
+from featurestore.redis_layout import Layout, delta_ops, flatten, parse_positions, read_plan
+from featurestore.state import VehicleState
+from featurestore.store import (
+    AsOfError,
+    Delta,
+    ReadRequest,
+    ReadResult,
+    SourcePosition,
+    StaleBatchError,
+)
+
+# The apply script: refuse the batch if a partition already applied offsets at or after its
+# span's start, then run the operations. Checks come first and the operations cannot fail on
+# well-formed keys, so a batch is never half applied.
+APPLY_LUA = """
+local pos = KEYS[1]
+local n = tonumber(ARGV[1])
+local i = 2
+for _ = 1, n do
+  local stored = redis.call('HGET', pos, ARGV[i])
+  if stored and tonumber(stored) > tonumber(ARGV[i + 1]) then
+    return redis.error_reply('STALE partition ' .. ARGV[i] .. ' has applied up to offset ' ..
+      (tonumber(stored) - 1) .. ', batch starts at ' .. ARGV[i + 1])
+  end
+  i = i + 2
+end
+local argc = #ARGV
+local ops = 0
+while i <= argc do
+  local op = ARGV[i]
+  if op == 'I' then
+    redis.call('HINCRBY', ARGV[i + 1], ARGV[i + 2], ARGV[i + 3]); i = i + 4
+  elseif op == 'Z' then
+    redis.call('ZADD', ARGV[i + 1], ARGV[i + 2], ARGV[i + 3]); i = i + 4
+  elseif op == 'X' then
+    redis.call('ZADD', ARGV[i + 1], 'XX', ARGV[i + 2], ARGV[i + 3]); i = i + 4
+  elseif op == 'S' then
+    redis.call('SET', ARGV[i + 1], ARGV[i + 2], 'EX', ARGV[i + 3]); i = i + 4
+  elseif op == 'E' then
+    redis.call('EXPIRE', ARGV[i + 1], ARGV[i + 2]); i = i + 3
+  elseif op == 'R' then
+    redis.call('ZREM', ARGV[i + 1], ARGV[i + 2]); i = i + 3
+  elseif op == 'T' then
+    redis.call('ZREMRANGEBYSCORE', ARGV[i + 1], '-inf', ARGV[i + 2]); i = i + 3
+  elseif op == 'H' then
+    redis.call('HSET', ARGV[i + 1], ARGV[i + 2], ARGV[i + 3]); i = i + 4
+  elseif op == 'M' then
+    local old = redis.call('HGET', ARGV[i + 1], ARGV[i + 2])
+    if not old or tonumber(old) < tonumber(ARGV[i + 3]) then
+      redis.call('HSET', ARGV[i + 1], ARGV[i + 2], ARGV[i + 3])
+    end
+    i = i + 4
+  elseif op == 'P' then
+    local floor = tonumber(ARGV[i + 2])
+    for _, f in ipairs(redis.call('HKEYS', ARGV[i + 1])) do
+      if tonumber(string.sub(f, 2)) < floor then redis.call('HDEL', ARGV[i + 1], f) end
+    end
+    i = i + 3
+  else
+    return redis.error_reply('unknown operation ' .. tostring(op))
+  end
+  ops = ops + 1
+end
+return ops
+"""
+
+
+class RedisStore:
+    """A StateStore in Redis (a real server, or fakeredis for the embedded default and tests).
+
+    ``history_ms``: how long before its watermark it answers reads exactly (arrival-tagged
+    logs kept that long); ``namespace`` prefixes every key; ``ttl_margin_s`` is added to every
+    key's lifetime. Lifetimes are wall-clock seconds derived from the longest window, the
+    vehicle expiry, the route days and the history (see ``Layout``).
+    """
+
+    def __init__(self, client: Any, config: EngineConfig | None = None, *,
+                 history_ms: int = 0, namespace: str = "cellpulse",
+                 ttl_margin_s: int = 600) -> None:
+        self.client = client
+        self.config = config or EngineConfig()
+        self.history_ms = int(history_ms)
+        self.layout = Layout(self.config, namespace, self.history_ms, ttl_margin_s)
+        self._apply = client.register_script(APPLY_LUA)
+
+    @classmethod
+    def from_url(cls, url: str, config: EngineConfig | None = None, **kwargs: Any
+                 ) -> RedisStore:
+        """Connect to ``redis://…`` (a real server) or ``memory://`` (in-process fakeredis)."""
+        if url.startswith("memory://"):
+            import fakeredis
+
+            client = fakeredis.FakeRedis()
+        else:
+            import redis
+
+            client = redis.Redis.from_url(url, socket_timeout=10, socket_connect_timeout=5,
+                                          health_check_interval=30)
+        return cls(client, config, **kwargs)
+
+    # --- writes ------------------------------------------------------------------------
+    def load_vehicles(self, vehicle_ids: Collection[str]) -> dict[str, VehicleState]:
+        ids = list(vehicle_ids)
+        if not ids:
+            return {}
+        raws = self.client.mget([self.layout.vehicle(v) for v in ids])
+        return {v: VehicleState.from_dict(_loads(r)) for v, r in zip(ids, raws, strict=True)
+                if r is not None}
+
+    def apply(self, delta: Delta) -> None:
+        checks, ops = delta_ops(delta, self.layout, os.urandom(4).hex())
+        if not checks and not ops:
+            return
+        import redis
+
+        try:
+            self._apply(keys=[self.layout.positions], args=flatten(checks, ops))
+        except redis.ResponseError as exc:
+            if "STALE" in str(exc):
+                raise StaleBatchError(str(exc).split("STALE ", 1)[-1]) from None
+            raise
+
+    def set_highwaters(self, ends: Mapping[str, int]) -> None:
+        """Record each partition's end offset as its consumer last saw it (for ``known_at``)."""
+        if ends:
+            self.client.hset(self.layout.highwaters, mapping={k: int(v) for k, v in ends.items()})
+
+    # --- reads -------------------------------------------------------------------------
+    def read(self, request: ReadRequest) -> ReadResult:
+        t = request.as_of_ms
+        if t is None:
+            t = self.watermark_ms() or 0
+        plan = read_plan(request, self.layout, t)
+        pipe = self.client.pipeline(transaction=True)
+        for cmd in plan.commands:
+            pipe.execute_command(*cmd)
+        if request.with_progress:
+            pipe.hgetall(self.layout.positions)
+            pipe.hgetall(self.layout.arrivals)
+            pipe.hgetall(self.layout.highwaters)
+        replies = pipe.execute()
+        if request.with_progress:
+            *replies, nxt, arr, hw = replies
+        out = plan.parse(replies)
+        wm = out.watermark_ms
+        if wm is not None and t < wm:
+            if not self.history_ms or t < wm - self.history_ms:
+                raise AsOfError(
+                    f"as of {t} ms is before what this store can answer: its watermark is {wm} "
+                    f"ms and it keeps {self.history_ms} ms of history"
+                )
+        if request.with_progress:
+            out.positions = parse_positions(nxt, arr)
+            out.highwaters = {_s(k): int(v) for k, v in hw.items()}
+        return out
+
+    def watermark_ms(self) -> int | None:
+        wm = self.client.hget(self.layout.meta, "wm")
+        return None if wm is None else int(wm)
+
+    def offsets(self) -> Mapping[str, int]:
+        return {p: pos.next_offset for p, pos in self.positions().items()}
+
+    def positions(self) -> Mapping[str, SourcePosition]:
+        pipe = self.client.pipeline(transaction=True)
+        pipe.hgetall(self.layout.positions)
+        pipe.hgetall(self.layout.arrivals)
+        nxt, arr = pipe.execute()
+        return parse_positions(nxt, arr)
+
+    def highwaters(self) -> dict[str, int]:
+        return {_s(k): int(v) for k, v in self.client.hgetall(self.layout.highwaters).items()}
+
+    def ping(self) -> bool:
+        return bool(self.client.ping())
+
+
+def _s(x: bytes | str) -> str:
+    return x.decode() if isinstance(x, bytes) else x
+
+
+def _loads(raw: bytes | str) -> dict:
+    import orjson
+
+    return orjson.loads(raw)
