@@ -19,6 +19,7 @@ from pydantic import BeforeValidator, Field, TypeAdapter, ValidationError
 STATUSES = ("vacant", "occupied", "offline")
 Status = Literal["vacant", "occupied", "offline"]
 FIELDS = ("vehicle_id", "event_ts", "lat", "lon", "status", "speed_mps", "trip_id", "arrival_ts")
+KEY_FIELD = "key"  # the live record's key: must equal the message's vehicle_id
 REQUIRED = ("vehicle_id", "event_ts", "lat", "lon", "status", "arrival_ts")
 
 # Reasons (machine-readable). invalid:<field> is built from the failing field's name.
@@ -27,7 +28,8 @@ TOO_LATE = "too_late"
 FROM_FUTURE = "from_future"
 DUPLICATE = "duplicate"
 INVALID_PREFIX = "invalid:"
-REASONS = (MALFORMED, *(INVALID_PREFIX + f for f in FIELDS), TOO_LATE, FROM_FUTURE, DUPLICATE)
+REASONS = (MALFORMED, *(INVALID_PREFIX + f for f in (*FIELDS, KEY_FIELD)), TOO_LATE, FROM_FUTURE,
+           DUPLICATE)
 
 ID_PATTERN = r"^[A-Za-z0-9_.:\-]{1,64}$"
 _ID_RE = re.compile(ID_PATTERN)
@@ -189,3 +191,25 @@ def decode_row(row: Mapping[str, Any], original: Mapping[str, Any] | None = None
                          row_raw(original if original is not None else row),
                          result.vehicle_id, result.arrival_ms)
     return result
+
+
+def decode_record(key: bytes | None, value: bytes, timestamp_ms: int | None) -> Fix | Rejection:
+    """Decode a live record: the JSON value with ``arrival_ts`` = the record timestamp, and its
+    key, which must be the message's vehicle_id (the key decides the partition, and one
+    vehicle's fixes must stay in one partition, in order)."""
+    if timestamp_ms is None:
+        return Rejection(INVALID_PREFIX + "arrival_ts", "arrival_ts: the record has no timestamp",
+                         value)
+    out = decode_json(value, arrival_ms=timestamp_ms)
+    if isinstance(out, Rejection):
+        return out
+    if key is None:
+        return Rejection(INVALID_PREFIX + KEY_FIELD,
+                         "key: the record has no key (the key must be the vehicle_id)",
+                         value, out.vehicle_id, out.arrival_ms)
+    if key != out.vehicle_id.encode():
+        shown = key[:80].decode("utf-8", "replace")
+        return Rejection(INVALID_PREFIX + KEY_FIELD,
+                         f"key: {shown!r} is not the message's vehicle_id {out.vehicle_id!r}",
+                         value, out.vehicle_id, out.arrival_ms)
+    return out
