@@ -21,7 +21,7 @@ from featurestore.features import (
     route_vector,
     vehicle_vector,
 )
-from featurestore.store import AsOfError, ReadRequest, StateStore
+from featurestore.store import AsOfError, ReadRequest, ReadResult, StateStore
 from featurestore.transitions import local_hour
 
 
@@ -51,6 +51,21 @@ class Lookup:
         routes: Sequence[RouteQuery] = (),
     ) -> tuple[list[dict[str, object]], list[dict[str, object]], list[dict[str, object]]]:
         """Vectors for vehicles (vehicle+trip), cells and routes as of T, from one store read."""
+        v, c, r, _ = self.read_vectors(as_of_ms, vehicles, cells, routes)
+        for x in r:
+            del x["_hour"]
+        return v, c, r
+
+    def read_vectors(
+        self,
+        as_of_ms: int,
+        vehicles: Sequence[str] = (),
+        cells: Sequence[str] = (),
+        routes: Sequence[RouteQuery] = (),
+        with_progress: bool = False,
+    ) -> tuple[list[dict[str, object]], list[dict[str, object]], list[dict[str, object]],
+               ReadResult]:
+        """As ``vectors``, plus the raw read; route vectors carry the hour used as ``_hour``."""
         cfg = self.config
         ring_cells = sorted({c for cell in cells for c in ring_of(cell)})
         lo, hi = bucket_range(as_of_ms, cfg)
@@ -67,11 +82,13 @@ class Lookup:
             vehicles=list(dict.fromkeys(vehicles)), cells=wanted, bucket_hi=hi,
             presence_cells=ring_cells, presence_min_event_ms=presence_min_event_ms(as_of_ms, cfg),
             routes=list(dict.fromkeys(keys)), day_lo=dlo, day_hi=dhi, as_of_ms=as_of_ms,
+            with_progress=with_progress,
         ))
         return (
             [vehicle_vector(raw.vehicles.get(v), as_of_ms, cfg) for v in vehicles],
             [cell_vector(c, as_of_ms, raw, cfg) for c in cells],
-            [route_vector(k, raw) for k in keys],
+            [{**route_vector(k, raw), "_hour": k[2]} for k in keys],
+            raw,
         )
 
     def vehicle(self, vehicle_id: str, as_of_ms: int) -> dict[str, object]:
