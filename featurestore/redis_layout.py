@@ -276,12 +276,13 @@ def _vehicle_chains(delta: Delta) -> dict[str, list[tuple[int, VehicleState | No
     return out
 
 
+SEPARATOR = "\x1f"  # the unit separator: never in JSON text, ids or numbers
+
+
 def flatten(checks: list[str], ops: Iterable[Op]) -> list[str]:
-    """ARGV for the apply script: number of span checks, the checks, then the operations."""
-    argv = [str(len(checks) // 2), *checks]
-    for op in ops:
-        argv.extend(op)
-    return argv
+    """ARGV for the apply script: number of span checks, the checks, then the operations
+    packed into one string, fields separated by SEPARATOR."""
+    return [str(len(checks) // 2), *checks, SEPARATOR.join(x for op in ops for x in op)]
 
 
 # ------------------------------------------------------------------------------------------
