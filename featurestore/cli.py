@@ -97,6 +97,13 @@ def cmd_demo(args: argparse.Namespace) -> int:
                     hours=args.hours, config=engine_config(args))
 
 
+def cmd_serve(args: argparse.Namespace) -> int:
+    from featurestore.server import serve
+
+    return serve(redis_url=args.redis_url, host=args.host, port=args.port,
+                 history_s=args.history, log_level=args.log_level, config=engine_config(args))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="cellpulse",
@@ -161,6 +168,28 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--hours", type=float, default=24.0)
     _engine_flags(p)
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser(
+        "serve", help="serve feature vectors over HTTP (JSON API, OpenAPI, Prometheus metrics)",
+        description="Answer vector lookups from the Redis state the consumers write: "
+                    "/v1/vehicles/ID, /v1/cells/CELL, /v1/routes/ORIGIN/DEST, POST /v1/vectors "
+                    "(up to 1,000 keys), /v1/catalog, /v1/health, /metrics; schema at "
+                    "/openapi.json, docs at /docs. Use the consumers' engine options: every "
+                    "response carries the catalog version to check it.",
+        epilog=EPILOG + f" Also {ENV_PREFIX}REDIS_URL, {ENV_PREFIX}HOST, {ENV_PREFIX}PORT, "
+               f"{ENV_PREFIX}HISTORY and {ENV_PREFIX}LOG_LEVEL.")
+    p.add_argument("--redis-url", metavar="URL",
+                   help="redis://HOST:PORT/DB of the consumers' state (memory:// for an empty "
+                        "in-process store)")
+    p.add_argument("--host", help="address to listen on (default 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port to listen on (default 8000)")
+    p.add_argument("--history", type=float, metavar="SECONDS",
+                   help="how far before the watermark lookups are answered; must not exceed "
+                        "the history the consumers keep (default 0)")
+    p.add_argument("--log-level", choices=("critical", "error", "warning", "info", "debug"),
+                   help="server log level; debug also logs every request (default info)")
+    _engine_flags(p)
+    p.set_defaults(func=cmd_serve)
     return parser
 
 

@@ -13,6 +13,7 @@ import datetime as dt
 import logging
 import math
 import re
+import sys
 import time
 from collections.abc import Callable, Iterable, Mapping
 from typing import Annotated, Any, Literal, Union
@@ -37,6 +38,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from featurestore import __version__
 from featurestore.catalog import Catalog, Feature
 from featurestore.client import MAX_KEYS, BadRequest, FeatureClient, VectorResponse
+from featurestore.config import ENV_PREFIX, EngineConfig
 from featurestore.lookup import AsOfError, RouteQuery
 from featurestore.progress import known_at
 from featurestore.schema import MAX_TS_MS, MIN_TS_MS
@@ -610,9 +612,68 @@ def health_progress(raw: Any) -> dict[str, object]:
             "lag": total, "partitions": parts}
 
 
+# --- running it ------------------------------------------------------------------------------
+
+def _setting(flag: Any, name: str, parse: Callable[[str], Any], default: Any,
+             environ: Mapping[str, str]) -> Any:
+    """A flag's value, else ``CELLPULSE_<NAME>`` from the environment, else the default."""
+    if flag is not None:
+        return flag
+    raw = environ.get(ENV_PREFIX + name)
+    if raw is None or raw == "":
+        return default
+    try:
+        return parse(raw)
+    except ValueError as exc:
+        raise ValueError(f"environment variable {ENV_PREFIX}{name}={raw!r}: {exc}") from None
+
+
+def serve(*, redis_url: str | None, host: str | None = None, port: int | None = None,
+          history_s: float | None = None, log_level: str | None = None,
+          config: EngineConfig | None = None, environ: Mapping[str, str] | None = None) -> int:
+    """Run the API with uvicorn until SIGTERM/SIGINT. Unset arguments come from
+    ``CELLPULSE_REDIS_URL``, ``CELLPULSE_HOST``, ``CELLPULSE_PORT``, ``CELLPULSE_HISTORY``
+    (seconds) and ``CELLPULSE_LOG_LEVEL``; flags win."""
+    import os
+
+    import uvicorn
+
+    from featurestore.redis_store import RedisStore
+
+    env = os.environ if environ is None else environ
+    url = _setting(redis_url, "REDIS_URL", str, None, env)
+    if not url:
+        raise ValueError("no Redis to serve from: give --redis-url redis://HOST:PORT/DB or set "
+                         f"{ENV_PREFIX}REDIS_URL")
+    if not url.startswith(("redis://", "rediss://", "unix://", "memory://")):
+        raise ValueError(f"--redis-url {redact_url(url)!r} is not a redis://, rediss://, "
+                         "unix:// or memory:// URL")
+    host = _setting(host, "HOST", str, "127.0.0.1", env)
+    port = _setting(port, "PORT", int, 8000, env)
+    if not 0 <= port <= 65535:
+        raise ValueError(f"port {port} is not 0..65535")
+    history = _setting(history_s, "HISTORY", float, 0.0, env)
+    if not history >= 0:
+        raise ValueError(f"history {history} s must be >= 0")
+    level = _setting(log_level, "LOG_LEVEL", str, "info", env).lower()
+    cfg = config or EngineConfig()
+    store = RedisStore.from_url(url, cfg, history_ms=round(history * 1000))
+    client = FeatureClient(store, cfg)
+    try:
+        _progress(client)
+    except redis.exceptions.RedisError as exc:  # serve anyway: health says 503 until it is back
+        print(f"cellpulse serve: warning: Redis at {redact_url(url)} does not answer yet ({exc}); "
+              "lookups and /v1/health answer 503 until it does", file=sys.stderr)
+    print(f"cellpulse serve: http://{host}:{port} (docs at /docs) from {redact_url(url)}, "
+          f"catalog {client.catalog.version}, history {history:g} s", file=sys.stderr)
+    uvicorn.run(create_app(client), host=host, port=port, log_level=level,
+                access_log=level == "debug", timeout_graceful_shutdown=10)
+    return 0
+
+
 def redact_url(url: str) -> str:
     """A Redis URL without its password, for messages and logs."""
     return re.sub(r"//([^:@/]*):[^@/]*@", r"//\1:***@", url)
 
 
-__all__ = ["create_app", "parse_as_of", "redact_url", "vector_models"]
+__all__ = ["create_app", "parse_as_of", "redact_url", "serve", "vector_models"]
