@@ -63,6 +63,11 @@ def cmd_catalog(args: argparse.Namespace) -> int:
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
+    if args.to_kafka:
+        return _replay_to_kafka(args)
+    if not args.out:
+        raise ValueError("say where the rows go: --out PATH (a training set) or "
+                         "--to-kafka HOST:PORT (push the inputs into a topic)")
     from replay.output import output_format
     from replay.training import replay_labels, replay_trips
 
@@ -78,6 +83,34 @@ def cmd_replay(args: argparse.Namespace) -> int:
         summary = replay_trips(args.inputs, args.out, after_fixes=args.after_fixes, **common)
     print(json.dumps(summary.as_dict(), indent=2))
     return 0
+
+
+def _replay_to_kafka(args: argparse.Namespace) -> int:
+    """``replay --to-kafka``: push the inputs into a topic in arrival order."""
+    import os
+
+    from replay.to_kafka import ensure_topic, parse_speed, push_to_kafka
+
+    topic = args.topic or os.environ.get(ENV_PREFIX + "TOPIC") or "fixes"
+    given = [flag for flag, on in (("--out", args.out), ("--labels", args.labels),
+                                   ("--trips", args.trips), ("--format", args.format),
+                                   ("--dead-letters", args.dead_letters),
+                                   ("--after-fixes", args.after_fixes != 1)) if on]
+    if given:
+        raise ValueError(f"{', '.join(given)}: not with --to-kafka (a push writes no training "
+                         "set; the live path dead-letters what it rejects)")
+    speed = parse_speed(args.speed)
+    created = None
+    if args.create_topic is not None:
+        created, _parts = ensure_topic(args.to_kafka, topic, args.create_topic)
+    summary = push_to_kafka(args.inputs, args.to_kafka, topic, speed=speed,
+                            assume_delay_s=args.assume_delay, sort=args.sort,
+                            progress=not args.no_progress and sys.stderr.isatty())
+    out = summary.as_dict()
+    if created is not None:
+        out["topic_created"] = created
+    print(json.dumps(out, indent=2))
+    return 1 if summary.failed else 0
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
@@ -126,11 +159,15 @@ def build_parser() -> argparse.ArgumentParser:
         "replay", help="rebuild features from recorded files and write a training set",
         description="Process recorded fixes in arrival order (ties in file order) through the "
                     "engine and write a training set: label rows joined as of their ts "
-                    "(--labels), or one row per completed trip (--trips, the default).",
+                    "(--labels), or one row per completed trip (--trips, the default). "
+                    "With --to-kafka, push the recorded fixes into a Kafka topic instead, "
+                    "in arrival order (key = vehicle_id, timestamp = arrival_ts), to run a "
+                    "recorded day through the live path.",
         epilog=EPILOG)
     p.add_argument("inputs", nargs="+", metavar="INPUT",
                    help="recorded fixes: .parquet, .csv or .jsonl files")
-    p.add_argument("--out", required=True, help="training set path (.parquet, or .csv)")
+    p.add_argument("--out", help="training set path (.parquet, or .csv); required unless "
+                                 "--to-kafka")
     mode = p.add_mutually_exclusive_group()
     mode.add_argument("--labels", help="label table with a ts column and key columns")
     mode.add_argument("--trips", action="store_true", help="one row per completed trip")
@@ -146,6 +183,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--dead-letters", metavar="PATH",
                    help="where rejected rows go (default OUT.dead-letters.parquet)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    k = p.add_argument_group("push into Kafka (instead of writing a training set)")
+    k.add_argument("--to-kafka", metavar="HOST:PORT",
+                   help="a Kafka bootstrap server: send each row with an arrival time to "
+                        "--topic in arrival order (rows without one are skipped and counted)")
+    k.add_argument("--topic", metavar="NAME",
+                   help=f"topic to push to (default: {ENV_PREFIX}TOPIC, else 'fixes')")
+    k.add_argument("--speed", default="max", metavar="FACTOR|max",
+                   help="pace: 1 = real time, 60 = one recorded hour per minute, max = as fast "
+                        "as the broker takes them (default max)")
+    k.add_argument("--create-topic", type=int, metavar="PARTITIONS",
+                   help="create the topic with this many partitions if it does not exist")
     _engine_flags(p)
     p.set_defaults(func=cmd_replay)
 
