@@ -91,13 +91,44 @@ def arrival_order(items: Iterable[Item], run_rows: int = 50_000, force_sort: boo
         yield from heapq.merge(*streams, key=_key)
 
 
-def merge_inputs(streams: list[Iterator[Item]]) -> Iterator[Item]:
+def merge_inputs(streams: list[Iterator[Item]], starts: list[int | None] | None = None
+                 ) -> Iterator[Item]:
     """Merge per-input ordered streams into one (arrival, source, row) order.
 
     Rows without an arrival time (rejections, which change no state) carry the smallest key
-    and come out as soon as they head their stream.
+    and come out as soon as they head their stream. ``starts`` may give, per stream, a lower
+    bound of its arrival times (None: unknown); such a stream is opened only once the merge
+    reaches that time, so a tape of many files holds few of them open at once.
     """
     if len(streams) == 1:
         yield from streams[0]
         return
-    yield from heapq.merge(*streams, key=_key)
+    if starts is None or all(s is None for s in starts):
+        yield from heapq.merge(*streams, key=_key)
+        return
+    yield from _lazy_merge(streams, starts)
+
+
+def _lazy_merge(streams: list[Iterator[Item]], starts: list[int | None]) -> Iterator[Item]:
+    heap: list[tuple[tuple[int, int, int], int, Item]] = []
+    pending = sorted((s, i) for i, s in enumerate(starts) if s is not None)
+    pending.reverse()  # popped from the end, earliest first
+
+    def advance(i: int) -> None:
+        item = next(streams[i], None)
+        if item is not None:
+            heapq.heappush(heap, (_key(item), i, item))
+
+    for i, s in enumerate(starts):
+        if s is None:
+            advance(i)
+    while heap or pending:
+        # A pending stream's rows all arrive at or after its start: open it before anything
+        # arriving at that time comes out.
+        while pending and (not heap or pending[-1][0] <= heap[0][0][0]):
+            advance(pending.pop()[1])
+        if not heap:
+            continue
+        _, i, item = heapq.heappop(heap)
+        yield item
+        advance(i)

@@ -3,19 +3,27 @@
 Each reader yields ``Item`` records in file order: the decoded fix or rejection, its raw
 form, and its position. Column set: vehicle_id, event_ts, lat, lon, status, speed_mps
 (optional), trip_id (optional), arrival_ts (required unless an assumed delay is given).
+
+A Parquet file with a ``reason`` column is read as a tape (``ingest.tape``): a row whose
+``reason`` is set is the rejection it was when it arrived (reason, ``detail``, and the
+``raw`` column as its raw bytes) and is not validated again; the other rows are validated as
+usual, with ``raw`` kept as their raw bytes for dead letters. A directory given as input
+stands for the Parquet files under it, sorted by path (``expand_inputs``).
 """
 
 from __future__ import annotations
 
 import csv
+import datetime as dt
 import io
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import orjson
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from featurestore.schema import (
@@ -24,6 +32,7 @@ from featurestore.schema import (
     Fix,
     Rejection,
     decode_row,
+    row_raw,
     to_epoch_ms,
 )
 
@@ -113,11 +122,62 @@ def iter_parquet(path: Path, source: int, delay_ms: int | None, batch_rows: int
             if pa.types.is_timestamp(kind) and kind.tz is None:
                 raise InputError(f"{path}: column {name} is a timestamp without a time zone; "
                                  "store it as UTC (e.g. timestamp[ms, tz=UTC]) or epoch seconds")
+    if "reason" in pf.schema_arrow.names:
+        yield from _iter_tape(pf, source, delay_ms, min(batch_rows, _TAPE_BATCH_ROWS))
+        return
     row = 0
     for batch in pf.iter_batches(batch_size=batch_rows):
         for rec in batch.to_pylist():
             fixed = rec if delay_ms is None else _with_assumed_arrival(dict(rec), delay_ms)
             yield Item(source, row, decode_row(fixed, rec))
+            row += 1
+
+
+_TAPE_BATCH_ROWS = 8192  # a tape is many files merged at once: keep each one's batch small
+
+
+def _seconds(batch: pa.RecordBatch) -> pa.RecordBatch:
+    """timestamp[ms] columns as epoch seconds: exact for milliseconds, and far cheaper to
+    validate than datetime objects."""
+    cols = list(batch.columns)
+    for i, f in enumerate(batch.schema):
+        if pa.types.is_timestamp(f.type) and f.type.unit == "ms":
+            cols[i] = pc.divide(cols[i].cast(pa.int64()), 1000.0)
+    return pa.RecordBatch.from_arrays(cols, names=batch.schema.names)
+
+
+def _tape_ms(value: Any) -> int | None:
+    try:
+        return to_epoch_ms(value) if value is not None else None
+    except ValueError:
+        return None
+
+
+def _iter_tape(pf: pq.ParquetFile, source: int, delay_ms: int | None, batch_rows: int
+               ) -> Iterator[Item]:
+    """A tape's rows: recorded rejections as they were, the rest validated as usual."""
+    row = 0
+    for batch in pf.iter_batches(batch_size=batch_rows):
+        for rec in _seconds(batch).to_pylist():
+            raw = rec.get("raw")
+            reason = rec.get("reason")
+            if reason is not None:
+                vid = rec.get("vehicle_id")
+                value: Fix | Rejection = Rejection(
+                    str(reason), rec.get("detail") or "",
+                    raw if isinstance(raw, bytes) else row_raw(rec),
+                    vid if isinstance(vid, str) else None, _tape_ms(rec.get("arrival_ts")))
+                yield Item(source, row, value)
+            else:
+                fixed = rec if delay_ms is None else _with_assumed_arrival(dict(rec), delay_ms)
+                value = decode_row(fixed, rec)
+                if isinstance(raw, bytes):
+                    if isinstance(value, Rejection):
+                        value = Rejection(value.reason, value.detail, raw, value.vehicle_id,
+                                          value.arrival_ms)
+                    yield Item(source, row, value, raw if isinstance(value, Fix) else None)
+                else:
+                    yield Item(source, row, value)
             row += 1
 
 
@@ -169,6 +229,78 @@ def iter_file(path: str | Path, source: int = 0, assume_delay_s: float | None = 
     if fmt == "csv":
         return iter_csv(p, source, delay_ms)
     return iter_jsonl(p, source, delay_ms)
+
+
+def expand_inputs(inputs: Sequence[str | Path]) -> list[Path]:
+    """The input paths, each directory (a tape) replaced by the Parquet files under it,
+    sorted by path; hidden files (a writer's temporary files) are skipped."""
+    out: list[Path] = []
+    for given in inputs:
+        p = Path(given)
+        if not p.is_dir():
+            out.append(p)
+            continue
+        found = sorted(
+            (f for f in p.rglob("*") if f.is_file() and detect_format_or_none(f) == "parquet"
+             and not any(part.startswith(".") for part in f.relative_to(p).parts)),
+            key=lambda f: f.relative_to(p).as_posix())
+        if not found:
+            raise InputError(f"{p}: a directory without Parquet files")
+        out.extend(found)
+    return out
+
+
+def detect_format_or_none(path: str | Path) -> str | None:
+    try:
+        return detect_format(path)
+    except InputError:
+        return None
+
+
+def earliest_arrival_ms(path: str | Path) -> int | None:
+    """A lower bound of the arrival times in a Parquet file, from its column statistics
+    (None when unknown, or not Parquet). Lets replay open merged files only when due."""
+    p = Path(path)
+    if detect_format_or_none(p) != "parquet":
+        return None
+    try:
+        meta = pq.ParquetFile(p).metadata
+        names = meta.schema.to_arrow_schema().names
+        if "arrival_ts" not in names or meta.num_row_groups == 0:
+            return None
+        col = names.index("arrival_ts")
+        kind = meta.schema.to_arrow_schema().field(col).type
+        if not (pa.types.is_timestamp(kind) or pa.types.is_floating(kind)
+                or pa.types.is_integer(kind)):
+            return None  # text times do not sort by time
+        low: int | None = None
+        for g in range(meta.num_row_groups):
+            st = meta.row_group(g).column(col).statistics
+            if st is None or not st.has_min_max:
+                if st is not None and st.null_count == meta.row_group(g).num_rows:
+                    continue  # all null: no arrival to bound
+                return None
+            ms = _bound_ms(st.min, pa.types.is_timestamp(kind))
+            if ms is None:
+                return None
+            low = ms if low is None else min(low, ms)
+        return low
+    except (OSError, ValueError, pa.ArrowException):
+        return None
+
+
+def _bound_ms(value: Any, timestamp: bool) -> int | None:
+    """Milliseconds of a statistics minimum, rounded as ``to_epoch_ms`` would (no range check:
+    only a lower bound is needed)."""
+    if timestamp:
+        if not isinstance(value, dt.datetime) or value.tzinfo is None:
+            return None
+        delta = value - dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc)
+        return (delta.days * 86_400 + delta.seconds) * 1000 + round(delta.microseconds / 1000)
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        x = float(value)
+        return round(x * 1000.0) if x == x and abs(x) != float("inf") else None
+    return None
 
 
 def count_rows(path: str | Path) -> int | None:

@@ -28,7 +28,15 @@ from featurestore.schema import Rejection, to_epoch_ms
 from featurestore.transitions import CompletedTrip
 from replay.ordering import arrival_order, merge_inputs
 from replay.output import DEAD_LETTER_SCHEMA, TS_TYPE, TableWriter, feature_fields
-from replay.readers import InputError, Item, count_rows, detect_format, iter_file
+from replay.readers import (
+    InputError,
+    Item,
+    count_rows,
+    detect_format,
+    earliest_arrival_ms,
+    expand_inputs,
+    iter_file,
+)
 from replay.session import ReplaySession
 
 LABEL_KEYS = ("vehicle_id", "cell", "origin_cell", "dest_cell")
@@ -100,10 +108,13 @@ def _progress(total: int | None, enabled: bool) -> Any:
 
 def _ordered_items(inputs: Sequence[str | Path], assume_delay_s: float | None, sort: bool
                    ) -> Any:
-    """Each input in arrival order, then merged across inputs (ties: input order, row)."""
+    """Each input in arrival order, then merged across inputs (ties: input order, row).
+    Parquet inputs whose statistics bound their arrivals are opened only when due."""
     streams = [arrival_order(iter_file(p, i, assume_delay_s), force_sort=sort)
                for i, p in enumerate(inputs)]
-    return merge_inputs(streams)
+    starts = ([earliest_arrival_ms(p) for p in inputs]
+              if assume_delay_s is None and len(inputs) > 1 else None)
+    return merge_inputs(streams, starts)
 
 
 def _start(inputs: Sequence[str | Path], config: EngineConfig, dead_letters: str | Path | None
@@ -152,6 +163,7 @@ def replay_labels(inputs: Sequence[str | Path], labels: str | Path, out: str | P
                   dead_letters: str | Path | None = None, progress: bool = False
                   ) -> ReplaySummary:
     """Each label row gets, as of its ``ts``, the families its key columns name."""
+    inputs = expand_inputs(inputs)  # a directory (a tape) stands for its Parquet files
     cfg = config or EngineConfig()
     catalog = Catalog(cfg)
     table = read_table(labels)
@@ -268,6 +280,7 @@ def replay_trips(inputs: Sequence[str | Path], out: str | Path, *,
                  prepare: Callable[[ReplaySession], None] | None = None) -> ReplaySummary:
     """One row per completed trip: features as of the arrival of its ``after_fixes``-th fix
     (1 = the pickup fix), labels from its dropoff."""
+    inputs = expand_inputs(inputs)  # a directory (a tape) stands for its Parquet files
     cfg = config or EngineConfig()
     if after_fixes < 1:
         raise ValueError("after_fixes must be >= 1")
