@@ -628,6 +628,22 @@ def _setting(flag: Any, name: str, parse: Callable[[str], Any], default: Any,
         raise ValueError(f"environment variable {ENV_PREFIX}{name}={raw!r}: {exc}") from None
 
 
+def open_store(url: str, config: EngineConfig, history_ms: int) -> Any:
+    """The RedisStore to serve from. Fails fast when Redis is away (one immediate retry, for
+    a pooled connection that a Redis restart closed; 1 s to connect, 2 s to answer): callers
+    have deadlines of their own, and a 503 now beats a late vector."""
+    from redis.backoff import NoBackoff
+    from redis.retry import Retry
+
+    from featurestore.redis_store import RedisStore
+
+    if url.startswith("memory://"):
+        return RedisStore.from_url(url, config, history_ms=history_ms)
+    client = redis.Redis.from_url(url, socket_timeout=2, socket_connect_timeout=1,
+                                  health_check_interval=30, retry=Retry(NoBackoff(), 1))
+    return RedisStore(client, config, history_ms=history_ms)
+
+
 def serve(*, redis_url: str | None, host: str | None = None, port: int | None = None,
           history_s: float | None = None, log_level: str | None = None,
           config: EngineConfig | None = None, environ: Mapping[str, str] | None = None) -> int:
@@ -637,8 +653,6 @@ def serve(*, redis_url: str | None, host: str | None = None, port: int | None = 
     import os
 
     import uvicorn
-
-    from featurestore.redis_store import RedisStore
 
     env = os.environ if environ is None else environ
     url = _setting(redis_url, "REDIS_URL", str, None, env)
@@ -657,8 +671,7 @@ def serve(*, redis_url: str | None, host: str | None = None, port: int | None = 
         raise ValueError(f"history {history} s must be >= 0")
     level = _setting(log_level, "LOG_LEVEL", str, "info", env).lower()
     cfg = config or EngineConfig()
-    store = RedisStore.from_url(url, cfg, history_ms=round(history * 1000))
-    client = FeatureClient(store, cfg)
+    client = FeatureClient(open_store(url, cfg, round(history * 1000)), cfg)
     try:
         _progress(client)
     except redis.exceptions.RedisError as exc:  # serve anyway: health says 503 until it is back
@@ -676,4 +689,4 @@ def redact_url(url: str) -> str:
     return re.sub(r"//([^:@/]*):[^@/]*@", r"//\1:***@", url)
 
 
-__all__ = ["create_app", "parse_as_of", "redact_url", "serve", "vector_models"]
+__all__ = ["create_app", "open_store", "parse_as_of", "redact_url", "serve", "vector_models"]
