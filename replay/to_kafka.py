@@ -27,7 +27,7 @@ from typing import Any
 import orjson
 
 from featurestore.schema import Fix, Rejection
-from replay.readers import InputError, Item, count_rows, detect_format
+from replay.readers import InputError, Item, count_rows, detect_format, expand_inputs
 
 # Reads, decodes and orders inputs exactly as replay does (arrival order, ties in file order).
 from replay.training import _ordered_items
@@ -241,7 +241,8 @@ def push_to_kafka(
     sleep: Callable[[float], None] = time.sleep,
     producer_config: dict[str, Any] | None = None,
 ) -> PushSummary:
-    """Send every row of ``inputs`` with an arrival time to ``topic``, in arrival order.
+    """Send every row of ``inputs`` (files, or tape directories) with an arrival time to
+    ``topic``, in arrival order across all inputs.
 
     ``speed``: None sends as fast as the broker takes them; ``s`` > 0 paces the sends so
     that the wall-clock time since the first send is (arrival - first arrival) / s
@@ -250,6 +251,7 @@ def push_to_kafka(
     ``flush``, ``close``); by default a kafka-python KafkaProducer.
     """
     speed = parse_speed(speed)
+    inputs = expand_inputs(inputs)  # a directory (a tape) stands for its Parquet files
     for p in inputs:
         detect_format(p)
         if not Path(p).exists():

@@ -226,6 +226,23 @@ def test_pacing_catches_up_when_sending_is_slow(tmp_path):
         assert at == pytest.approx(max(due, producer.sent[i - 1][0] + 2.0) if i else due)
 
 
+def test_directory_of_parquet_files_is_merged_in_arrival_order(tmp_path):
+    tape = tmp_path / "tape"
+    tape.mkdir()
+    write_parquet(tape / "a.parquet", CityConfig(seed=5, vehicles=5, hours=0.25))
+    write_parquet(tape / "b.parquet", CityConfig(seed=10, vehicles=5, hours=0.25))
+    rows = sum(1 for name in ("a", "b") for it in iter_file(tape / f"{name}.parquet")
+               if it.arrival_ms is not None)
+    clock = FakeClock()
+    producer = RecordingProducer(clock)
+    summary = push_to_kafka([tape], "unused:9092", "fixes",
+                            producer_factory=lambda **cfg: producer, clock=clock,
+                            sleep=clock.sleep)
+    stamps = [ts for _at, _k, _v, ts in producer.sent]
+    assert summary.sent == len(stamps) == rows > 100
+    assert stamps == sorted(stamps)
+
+
 def test_max_speed_never_sleeps(tmp_path):
     summary, producer, clock = _paced(tmp_path, None)
     assert clock.sleeps == [] and summary.sent == len(producer.sent) > 50
