@@ -137,6 +137,12 @@ def cmd_serve(args: argparse.Namespace) -> int:
                  history_s=args.history, log_level=args.log_level, config=engine_config(args))
 
 
+def cmd_ingest(args: argparse.Namespace) -> int:
+    from ingest.main import run_ingest
+
+    return run_ingest(args, engine_config(args))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="cellpulse",
@@ -238,7 +244,71 @@ def build_parser() -> argparse.ArgumentParser:
                    help="server log level; debug also logs every request (default info)")
     _engine_flags(p)
     p.set_defaults(func=cmd_serve)
+
+    _ingest_parser(sub)
     return parser
+
+
+def _ingest_parser(sub: Any) -> None:
+    p = sub.add_parser(
+        "ingest", help="consume fixes from Kafka (or a file) into the Redis state",
+        description="Read position messages (key = vehicle_id, value = JSON fix, arrival = the "
+                    "record timestamp) from a Kafka topic as a member of a consumer group, "
+                    "apply them with the shared engine to Redis together with their offsets in "
+                    "one atomic step per batch, and send rejected messages to a dead-letter "
+                    "topic. Resumes from the offsets stored in Redis; stops cleanly on "
+                    "SIGTERM/SIGINT.",
+        epilog=f"Every option can also be set with an environment variable {ENV_PREFIX}<NAME> "
+               f"(e.g. {ENV_PREFIX}BOOTSTRAP, {ENV_PREFIX}REDIS_URL, {ENV_PREFIX}TOPIC, "
+               f"{ENV_PREFIX}GROUP, {ENV_PREFIX}HISTORY, {ENV_PREFIX}CELL_RESOLUTION); flags "
+               "win over the environment.")
+    g = p.add_argument_group("source")
+    g.add_argument("--bootstrap", metavar="HOST:PORT[,HOST:PORT]", help="Kafka bootstrap servers")
+    g.add_argument("--topic", metavar="NAME", help="topic of the fixes (default fixes)")
+    g.add_argument("--group", metavar="NAME", help="consumer group (default cellpulse)")
+    g.add_argument("--partitions", metavar="N,N,...",
+                   help="read exactly these partitions (static assignment, no group "
+                        "rebalancing) instead of joining the group")
+    g.add_argument("--start", choices=("earliest", "latest"),
+                   help="where to begin in partitions that the state has never applied "
+                        "(default earliest)")
+    g.add_argument("--from-file", metavar="PATH|-",
+                   help="read JSON Lines from a file (or - for stdin) instead of Kafka")
+    g.add_argument("--arrival-from-message", action="store_true", default=None,
+                   help="with --from-file: arrival = the message's arrival_ts (a recorded "
+                        "day), not the time the line is read")
+    g = p.add_argument_group("state and outputs")
+    g.add_argument("--redis-url", metavar="URL", help="redis://HOST:PORT/DB of the state")
+    g.add_argument("--history", type=float, metavar="SECONDS",
+                   help="seconds of history the state keeps for earlier as-of reads "
+                        "(default 900)")
+    g.add_argument("--dead-letter-topic", metavar="NAME",
+                   help="topic for rejected messages (default TOPIC-dead-letters)")
+    g.add_argument("--dead-letter-file", metavar="PATH",
+                   help="with --from-file: JSON Lines file for rejected messages (default "
+                        "PATH.dead-letters.jsonl)")
+    g.add_argument("--tape", metavar="DIR",
+                   help="also record every message received as hourly Parquet files in DIR "
+                        "(readable by cellpulse replay)")
+    g.add_argument("--metrics-port", type=int, metavar="PORT",
+                   help="serve Prometheus metrics on 127.0.0.1:PORT/metrics")
+    g = p.add_argument_group("consumer tuning")
+    g.add_argument("--max-poll-records", type=int, metavar="N",
+                   help="most messages per batch (default 500)")
+    g.add_argument("--session-timeout-ms", type=int, metavar="MS",
+                   help="consumer-group session timeout (default 10000)")
+    g.add_argument("--heartbeat-interval-ms", type=int, metavar="MS",
+                   help="consumer-group heartbeat interval (default 3000)")
+    g.add_argument("--fetch-max-wait-ms", type=int, metavar="MS",
+                   help="longest wait of a fetch for new messages (default 500)")
+    g.add_argument("--max-records", type=int, metavar="N",
+                   help="stop after applying N messages")
+    g.add_argument("--idle-exit", type=float, metavar="SECONDS",
+                   help="stop after SECONDS without a message")
+    g.add_argument("--log-level", choices=("critical", "error", "warning", "info", "debug"),
+                   help="log level (default info)")
+    _engine_flags(p)
+    p.set_defaults(func=cmd_ingest)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

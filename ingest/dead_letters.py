@@ -1,0 +1,184 @@
+"""Dead letters of the live path: every rejected message, its raw bytes kept exactly.
+
+The consumer loop sends (and flushes) a batch's dead letters BEFORE it applies the batch's
+state, so a crash can repeat a dead letter but never lose one. Readers dedupe on the source
+coordinates every letter carries: ``source_partition`` + ``source_offset`` identify the
+message exactly once (a repeat has the same reason and raw bytes).
+
+- Kafka (``KafkaDeadLetters``): topic ``<topic>-dead-letters`` by default; value = the raw
+  bytes as received, key = the original key, headers ``reason``, ``detail``,
+  ``source_partition`` (e.g. ``fixes:3``), ``source_offset``, ``source_timestamp`` (epoch ms
+  of the source record, empty when it had none), all UTF-8 text.
+- File (``FileDeadLetters``): JSON Lines with the same fields plus ``key``; ``raw`` is the
+  text of the raw bytes when they are valid UTF-8, else null with ``raw_base64`` holding them.
+"""
+
+from __future__ import annotations
+
+import base64
+import logging
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import orjson
+
+from featurestore.schema import Rejection
+from ingest.records import SourceRecord
+
+log = logging.getLogger("cellpulse.ingest")
+
+HEADERS = ("reason", "detail", "source_partition", "source_offset", "source_timestamp")
+
+
+@dataclass(frozen=True, slots=True)
+class DeadLetter:
+    """A rejected record and why."""
+
+    record: SourceRecord
+    reason: str
+    detail: str
+
+    @classmethod
+    def of(cls, record: SourceRecord, rejection: Rejection) -> DeadLetter:
+        return cls(record, rejection.reason, rejection.detail)
+
+    def headers(self) -> list[tuple[str, bytes]]:
+        r = self.record
+        ts = "" if r.timestamp_ms is None else str(r.timestamp_ms)
+        return [("reason", self.reason.encode()), ("detail", self.detail.encode()),
+                ("source_partition", r.partition.encode()),
+                ("source_offset", str(r.offset).encode()), ("source_timestamp", ts.encode())]
+
+
+class DeadLetterError(RuntimeError):
+    """Dead letters could not be stored durably (the batch must not be applied)."""
+
+
+class DeadLetterSink(Protocol):
+    def send(self, letters: Sequence[DeadLetter]) -> None:
+        """Store every letter durably before returning, or raise DeadLetterError."""
+        ...
+
+    def close(self) -> None:
+        ...
+
+
+class KafkaDeadLetters:
+    """Dead letters to a Kafka topic (acks from all in-sync replicas, flushed per batch)."""
+
+    def __init__(self, bootstrap: str, topic: str, *, timeout_s: float = 30.0,
+                 max_request_size: int = 8 * 1024 * 1024, producer: Any = None) -> None:
+        self.topic = topic
+        self.timeout_s = timeout_s
+        self.sent = 0
+        if producer is None:
+            from kafka import KafkaProducer
+
+            producer = KafkaProducer(
+                bootstrap_servers=bootstrap.split(","), acks="all", linger_ms=5,
+                max_request_size=max_request_size, request_timeout_ms=int(timeout_s * 1000),
+                client_id=f"cellpulse-dead-letters-{os.getpid()}",
+            )
+        self._producer = producer
+
+    def send(self, letters: Sequence[DeadLetter]) -> None:
+        if not letters:
+            return
+        from kafka.errors import KafkaError, MessageSizeTooLargeError
+
+        futures = []
+        failed: list[tuple[DeadLetter, BaseException]] = []
+        try:
+            for d in letters:
+                try:
+                    futures.append((d, self._producer.send(
+                        self.topic, key=d.record.key, value=d.record.value,
+                        headers=d.headers())))
+                except MessageSizeTooLargeError as exc:  # over the client's request limit
+                    failed.append((d, exc))
+            self._producer.flush(timeout=self.timeout_s)
+        except KafkaError as exc:
+            raise DeadLetterError(f"dead-letter topic {self.topic!r}: {_text(exc)}") from exc
+        for d, fut in futures:
+            if not fut.is_done:
+                raise DeadLetterError(f"dead-letter topic {self.topic!r}: not acknowledged "
+                                      f"within {self.timeout_s} s")
+            if fut.failed():
+                failed.append((d, fut.exception))
+        for d, exc in failed:
+            if isinstance(exc, MessageSizeTooLargeError):
+                self._send_truncated(d, exc)
+            else:
+                raise DeadLetterError(f"dead-letter topic {self.topic!r}: {_text(exc)}")
+        self.sent += len(letters)
+
+    def _send_truncated(self, d: DeadLetter, exc: BaseException) -> None:
+        """A raw message too large for the dead-letter topic: keep its first 64 KiB and say
+        so (header ``truncated_from`` = the full size), rather than stop the consumer."""
+        size = len(d.record.value)
+        log.error("dead letter %s@%d (%d bytes) too large for %r (%s): keeping its first "
+                  "64 KiB", d.record.partition, d.record.offset, size, self.topic, exc)
+        fut = self._producer.send(self.topic, key=d.record.key, value=d.record.value[:65536],
+                                  headers=[*d.headers(), ("truncated_from", str(size).encode())])
+        self._producer.flush(timeout=self.timeout_s)
+        if not fut.is_done or fut.failed():
+            raise DeadLetterError(f"dead-letter topic {self.topic!r}: {_text(fut.exception)}")
+
+    def close(self) -> None:
+        try:
+            self._producer.flush(timeout=self.timeout_s)
+            self._producer.close(timeout=5)
+        except Exception as exc:  # noqa: BLE001 - closing anyway
+            log.debug("closing the dead-letter producer: %s", exc)
+
+
+def _text(exc: BaseException) -> str:
+    return str(exc) or type(exc).__name__
+
+
+def letter_json(d: DeadLetter) -> dict[str, Any]:
+    """One dead letter as a JSON object (the file form)."""
+    r = d.record
+    out: dict[str, Any] = {
+        "reason": d.reason, "detail": d.detail, "source_partition": r.partition,
+        "source_offset": r.offset, "source_timestamp": r.timestamp_ms,
+        "key": None if r.key is None else r.key.decode("utf-8", "replace"),
+    }
+    try:
+        out["raw"] = r.value.decode("utf-8")
+    except UnicodeDecodeError:
+        out["raw"] = None
+        out["raw_base64"] = base64.b64encode(r.value).decode()
+    return out
+
+
+def letter_raw(obj: dict[str, Any]) -> bytes:
+    """The exact raw bytes of a dead letter read back from a file."""
+    if obj.get("raw") is not None:
+        return obj["raw"].encode("utf-8")
+    return base64.b64decode(obj["raw_base64"])
+
+
+class FileDeadLetters:
+    """Dead letters appended to a JSON Lines file, flushed and fsynced per batch."""
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+        self.sent = 0
+        self._fh = open(path, "ab")  # noqa: SIM115 - kept open for the run
+
+    def send(self, letters: Sequence[DeadLetter]) -> None:
+        if not letters:
+            return
+        try:
+            self._fh.write(b"".join(orjson.dumps(letter_json(d)) + b"\n" for d in letters))
+            self._fh.flush()
+            os.fsync(self._fh.fileno())
+        except OSError as exc:
+            raise DeadLetterError(f"dead-letter file {self.path}: {exc}") from exc
+        self.sent += len(letters)
+
+    def close(self) -> None:
+        self._fh.close()
