@@ -239,7 +239,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--port", type=int, help="port to listen on (default 8000)")
     p.add_argument("--history", type=float, metavar="SECONDS",
                    help="how far before the watermark lookups are answered; must not exceed "
-                        "the history the consumers keep (default 0)")
+                        "the consumers' --history (default 900, as cellpulse ingest)")
     p.add_argument("--log-level", choices=("critical", "error", "warning", "info", "debug"),
                    help="server log level; debug also logs every request (default info)")
     _engine_flags(p)

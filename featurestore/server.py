@@ -46,6 +46,9 @@ from featurestore.store import ReadRequest
 
 log = logging.getLogger("cellpulse.serve")
 
+# The consumers' default (``cellpulse ingest --history``): the server must not answer further
+# back than the consumers keep arrival-tagged history.
+DEFAULT_HISTORY_S = 900.0
 MAX_BODY_BYTES = 1 << 20  # a batch of 1,000 route keys is about 100 kB
 NULL_NOTE = ("JSON has no NaN: a float feature whose value is undefined (NaN in Python and in "
              "training sets, e.g. a heading with no moving step) is sent as null.")
@@ -666,7 +669,7 @@ def serve(*, redis_url: str | None, host: str | None = None, port: int | None = 
     port = _setting(port, "PORT", int, 8000, env)
     if not 0 <= port <= 65535:
         raise ValueError(f"port {port} is not 0..65535")
-    history = _setting(history_s, "HISTORY", float, 0.0, env)
+    history = _setting(history_s, "HISTORY", float, DEFAULT_HISTORY_S, env)
     if not history >= 0:
         raise ValueError(f"history {history} s must be >= 0")
     level = _setting(log_level, "LOG_LEVEL", str, "info", env).lower()

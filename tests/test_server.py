@@ -460,6 +460,7 @@ def test_serve_settings_from_flags_and_environment(monkeypatch, capsys) -> None:
 
     runs: list[dict] = []
     monkeypatch.setattr(uvicorn, "run", lambda app, **kw: runs.append({"app": app, **kw}))
+    monkeypatch.delenv("CELLPULSE_HISTORY", raising=False)
     monkeypatch.setenv("CELLPULSE_REDIS_URL", "memory://")
     monkeypatch.setenv("CELLPULSE_HOST", "127.0.0.2")
     monkeypatch.setenv("CELLPULSE_PORT", "9001")
@@ -471,6 +472,8 @@ def test_serve_settings_from_flags_and_environment(monkeypatch, capsys) -> None:
     client = run["app"].state.client
     assert client.config.cell_resolution == 9 and client.store.history_ms == 60_000
     assert f"catalog {client.catalog.version}, history 60 s" in capsys.readouterr().err
+    assert cli_main(["serve"]) == 0  # the consumers' default history: 900 s
+    assert runs[-1]["app"].state.client.store.history_ms == 900_000 and runs[-1]["port"] == 9001
 
     monkeypatch.delenv("CELLPULSE_REDIS_URL")
     assert cli_main(["serve"]) == 2
@@ -481,7 +484,7 @@ def test_serve_settings_from_flags_and_environment(monkeypatch, capsys) -> None:
     monkeypatch.setenv("CELLPULSE_PORT", "eighty")
     assert cli_main(["serve", "--redis-url", "memory://"]) == 2
     assert "environment variable CELLPULSE_PORT='eighty'" in capsys.readouterr().err
-    assert len(runs) == 1
+    assert len(runs) == 2
 
 
 def test_cellpulse_serve_over_real_http_and_real_redis(redis_url) -> None:
