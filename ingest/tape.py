@@ -29,6 +29,7 @@ Columns (one row per record, ``TAPE_SCHEMA``):
 ``offset``      int64                   the record's offset in that partition
 ``key``         binary                  the record key as received (null: no key)
 ``raw``         binary                  the record value as received, byte for byte
+                                        (null: the record had no value)
 ``reason``      string                  null when the record decoded; else the decode
                                         rejection's reason (``malformed``, ``invalid:<field>``)
 ``detail``      string                  the rejection's readable detail; null when decoded
@@ -96,7 +97,7 @@ TAPE_SCHEMA = pa.schema(
         pa.field("partition", pa.string(), nullable=False),
         pa.field("offset", pa.int64(), nullable=False),
         pa.field("key", pa.binary()),
-        pa.field("raw", pa.binary(), nullable=False),
+        pa.field("raw", pa.binary()),  # null only for a record without a value
         pa.field("reason", pa.string()),
         pa.field("detail", pa.string()),
     ],
@@ -125,6 +126,10 @@ def hour_start_ms(name: str) -> int | None:
     return int(stamp.timestamp()) * 1000
 
 
+class TapeError(OSError):
+    """A part file could not be written (the batch itself was buffered)."""
+
+
 class TapeWriter:
     """Records a consumer's batches (raw records and what they decoded to) as tape part files.
 
@@ -135,7 +140,8 @@ class TapeWriter:
 
     def __init__(self, directory: str | Path, name: str, *, part_rows: int = 100_000,
                  close_after_s: float = 120.0, max_age_s: float | None = 300.0,
-                 keep_hours: float | None = None, compression: str = "zstd") -> None:
+                 keep_hours: float | None = None, compression: str = "zstd",
+                 retry_s: float = 5.0, max_buffered_rows: int | None = None) -> None:
         if not _NAME_RE.fullmatch(name):
             raise ValueError(f"tape writer name {name!r}: use 1-100 of A-Z a-z 0-9 _ . -")
         if part_rows < 1:
@@ -147,8 +153,12 @@ class TapeWriter:
         self.max_age_s = max_age_s
         self.keep_hours = keep_hours
         self.compression = compression
+        self.retry_s = retry_s
+        self.max_buffered_rows = max_buffered_rows or 4 * part_rows
         self.files: list[Path] = []  # part files written by this writer, in order
         self.rows_written = 0
+        self.rows_dropped = 0  # given up after failed writes, to bound memory
+        self._retry_at = 0.0  # after a failed write, no new attempt before this (monotonic)
         self._buffers: dict[int, dict[str, list[Any]]] = {}
         self._buffered = 0
         self._oldest: float | None = None  # time.monotonic() of the oldest buffered row
@@ -161,11 +171,18 @@ class TapeWriter:
     # --- recording ---------------------------------------------------------------------------
 
     def write(self, records: Sequence[SourceRecord], decoded: Sequence[Fix | Rejection]) -> None:
-        """Buffer one batch; write part files that are due."""
+        """Buffer one batch; write part files that are due.
+
+        A failed part write never loses the batch: every row is buffered, the rows stay for a
+        new attempt after ``retry_s``, and TapeError is raised once the batch is in. Only when
+        failures pile up beyond ``max_buffered_rows`` are the buffered rows dropped (counted in
+        ``rows_dropped``), so that a full disk cannot exhaust the consumer's memory.
+        """
         if self._closed:
             raise ValueError("tape writer is closed")
         if len(records) != len(decoded):
             raise ValueError(f"{len(records)} records but {len(decoded)} decoded values")
+        error: Exception | None = None
         for rec, value in zip(records, decoded, strict=True):
             arrival = value.arrival_ms
             if arrival is not None:
@@ -203,8 +220,31 @@ class TapeWriter:
                 self._oldest = time.monotonic()
             self._buffered += 1
             if self._buffered >= self.part_rows:
-                self.flush()
-        self._flush_due()
+                error = self._attempt(self.flush) or error
+        error = self._attempt(self._flush_due) or error
+        if error is not None:
+            dropped = 0
+            if self._buffered >= self.max_buffered_rows:
+                dropped = self._buffered
+                self.rows_dropped += dropped
+                self._buffers.clear()
+                self._buffered = 0
+                self._oldest = None
+            kept = f"{self._buffered} rows kept for a new attempt"
+            raise TapeError(f"tape {self.directory} ({self.name}): could not write a part file: "
+                            f"{error}; {kept}" + (f"; {dropped} rows dropped" if dropped else "")
+                            ) from error
+
+    def _attempt(self, step: Any) -> Exception | None:
+        """Run a flush step unless a recent failure says wait; return its error, if any."""
+        if time.monotonic() < self._retry_at:
+            return None
+        try:
+            step()
+        except Exception as exc:  # noqa: BLE001 - reported by write(), rows kept
+            self._retry_at = time.monotonic() + self.retry_s
+            return exc
+        return None
 
     def _flush_due(self) -> None:
         if self._max_arrival is not None:
@@ -219,7 +259,8 @@ class TapeWriter:
             self.flush()
 
     def flush(self) -> None:
-        """Write every buffered row now (one part file per hour that has rows)."""
+        """Write every buffered row now (one part file per hour that has rows); raises what a
+        failed write raised (the rows stay buffered)."""
         for h in sorted(self._buffers):
             self._flush_hour(h)
 

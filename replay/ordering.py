@@ -129,6 +129,17 @@ def _lazy_merge(streams: list[Iterator[Item]], starts: list[int | None]) -> Iter
             advance(pending.pop()[1])
         if not heap:
             continue
+        if len(heap) == 1:  # one stream open: run it until the next pending one is due
+            _, i, item = heap.pop()
+            yield item
+            due = pending[-1][0] if pending else None
+            for item in streams[i]:
+                k = _key(item)
+                if due is not None and k[0] >= due:
+                    heapq.heappush(heap, (k, i, item))
+                    break
+                yield item
+            continue
         _, i, item = heapq.heappop(heap)
         yield item
         advance(i)

@@ -27,7 +27,7 @@ from featurestore.cells import cell_of
 from featurestore.schema import Fix, Rejection, decode_record
 from ingest.citysim import CityConfig, write_jsonl
 from ingest.records import SourceRecord
-from ingest.tape import HOUR_MS, TAPE_SCHEMA, TapeWriter, hour_name, prune_tape
+from ingest.tape import HOUR_MS, TAPE_SCHEMA, TapeError, TapeWriter, hour_name, prune_tape
 from replay.ordering import merge_inputs
 from replay.readers import Item, expand_inputs
 from replay.training import replay_labels, replay_trips
@@ -248,6 +248,26 @@ def test_replay_of_the_tape_equals_replay_of_the_file(
     assert {"too_late", "duplicate", "from_future", "malformed", "invalid:key"} <= set(want)
 
 
+def test_cli_replays_a_tape_directory(day: Day, tape: tuple[Path, list[Path]], tmp_path: Path,
+                                     capsys: pytest.CaptureFixture[str]) -> None:
+    from featurestore.cli import main
+
+    root, files = tape
+    assert main(["replay", str(root), "--out", str(tmp_path / "t.parquet"), "--no-progress"]) == 0
+    summary = orjson.loads(capsys.readouterr().out)
+    assert summary["rows"] == len(day.records)
+    assert summary["engine"]["rejected"]["invalid:key"] == 21
+    dead = pq.read_table(tmp_path / "t.parquet.dead-letters.parquet").to_pylist()
+    # a dead letter names the part file and row it came from
+    first = next(d for d in dead if d["reason"] == "invalid:key")
+    row = pq.read_table(first["source"]).slice(first["row"], 1).to_pylist()[0]
+    assert Path(first["source"]) in files and row["raw"] == first["raw"]
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert main(["replay", str(empty), "--out", str(tmp_path / "e.parquet")]) == 2
+    assert "without Parquet files" in capsys.readouterr().err
+
+
 def test_labels_from_the_tape_equal_labels_from_the_file(
         day: Day, tape: tuple[Path, list[Path]], tmp_path: Path) -> None:
     root, _ = tape
@@ -266,12 +286,16 @@ def test_labels_from_the_tape_equal_labels_from_the_file(
     assert got["vehicle_cell"].notna().sum() >= 250
 
 
-def test_lazy_merge_equals_a_full_merge() -> None:
+@pytest.mark.parametrize(("spacing", "backwards"), [(40, False), (100, False), (100, True)])
+def test_lazy_merge_equals_a_full_merge(spacing: int, backwards: bool) -> None:
+    """Streams that overlap, or only touch (a tie at each boundary), in input order or with
+    later inputs holding earlier times (ties then favour the stream not yet open)."""
     rng = random.Random(12)
     t0 = 1_780_272_000_000
     streams: list[list[Item]] = []
     for src in range(7):
-        arr = sorted(t0 + src * 40 + rng.randrange(120) for _ in range(rng.randint(0, 30)))
+        base = t0 + (6 - src if backwards else src) * spacing
+        arr = sorted([base, base + 100] + [base + rng.randrange(101) for _ in range(src * 4)])
         items = [Item(src, r, Fix("v", a, 0.0, 0.0, "vacant", a)) for r, a in enumerate(arr)]
         if src == 3:
             items.insert(0, Item(src, 99, Rejection("malformed", "", b"x")))  # no arrival
@@ -316,6 +340,45 @@ def test_an_hour_is_written_once_it_closes(tmp_path: Path) -> None:
     w2.write(*_batch(t0 - 1_000))
     w2.close()
     assert w2.files == [tmp_path / "2026-06-01T00" / "a-000002.parquet"]
+
+
+def test_a_failed_write_keeps_the_batch_and_memory_stays_bounded(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import ingest.tape as tape_module
+
+    real = tape_module.pq.write_table
+    failing = {"on": True}
+    calls = Counter()
+
+    def write_table(*args, **kwargs):  # noqa: ANN002, ANN003
+        calls["write"] += 1
+        if failing["on"]:
+            raise OSError(28, "No space left on device")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(tape_module.pq, "write_table", write_table)
+    t0 = 1_780_275_600_000
+    w = TapeWriter(tmp_path, "a", part_rows=3, max_buffered_rows=8, retry_s=0, max_age_s=None)
+    with pytest.raises(TapeError, match="No space left on device; 4 rows kept"):
+        w.write(*_batch(*(t0 + k for k in range(4))))  # the whole batch is buffered
+    with pytest.raises(TapeError, match="9 rows dropped"):
+        w.write(*_batch(*(t0 + k for k in range(4, 9))))  # beyond 8 buffered: given up
+    assert (w.rows_dropped, w.buffered_rows, w.files) == (9, 0, [])
+    with pytest.raises(TapeError, match="3 rows kept"):
+        w.write(*_batch(t0 + 9, t0 + 10, t0 + 11))
+    failing["on"] = False
+    w.close()  # the kept rows are written at last
+    assert [pq.read_table(f).column("offset").to_pylist() for f in w.files] == [
+        [t0 + 9, t0 + 10, t0 + 11]]
+    assert not any(p.name.startswith(".") for p in tmp_path.rglob("*"))  # no temporary left
+    # after a failure, no new attempt before retry_s has passed
+    failing["on"] = True
+    w = TapeWriter(tmp_path, "b", part_rows=1, retry_s=3600, max_age_s=None)
+    before = calls["write"]
+    with pytest.raises(TapeError):
+        w.write(*_batch(t0, t0 + 1, t0 + 2))
+    w.write(*_batch(t0 + 3))
+    assert (calls["write"] - before, w.buffered_rows) == (1, 4)
 
 
 def test_prune_deletes_whole_hours_older_than_kept(tmp_path: Path) -> None:
