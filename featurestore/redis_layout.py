@@ -19,7 +19,8 @@ keys and one route's keys each share a Redis Cluster slot):
 ``P:rl:{o.d}:HOUR``            zset    history: each completed trip, by arrival
 ``P:pos``, ``P:arr``           hash    per source partition: next offset, latest arrival applied
 ``P:hw``                       hash    per source partition: end offset seen by its consumer
-``P:meta``                     hash    ``wm``: the watermark (latest arrival applied)
+``P:meta``                     hash    ``wm``: the watermark (latest arrival applied);
+                                       ``history_ms``: the history the writers keep
 =============================  ======  ==========================================================
 
 Presence is kept as intervals so that it can be read as of an earlier moment: member
@@ -252,6 +253,7 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
             elif kind in ("pv", "po"):
                 ops.append(("T", key, str(forget)))
         ops.append(("M", layout.meta, "wm", str(delta.watermark_ms)))
+        ops.append(("H", layout.meta, "history_ms", str(layout.history_ms)))
     for key, seconds in ttl.items():
         ops.append(("E", key, str(seconds)))
     for part, span in sorted(delta.spans.items()):
@@ -300,13 +302,15 @@ def _num(v: bytes | str | None) -> int:
     return 0 if v is None else int(v)
 
 
-def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int) -> ReadPlan:
+def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int,
+              with_logs: bool | None = None) -> ReadPlan:
     """Commands answering ``request`` as of ``as_of_ms`` (history replies are subtracted; the
-    caller checks that ``as_of_ms`` is within the history the store keeps)."""
+    caller checks that ``as_of_ms`` is within the history the writers keep, which the first
+    reply after the watermark gives). ``with_logs`` defaults to the layout keeping history."""
     t = as_of_ms
-    hist = layout.history_ms > 0
+    hist = layout.history_ms > 0 if with_logs is None else with_logs
     after = f"({t}"
-    cmds: list[Command] = [("HGET", layout.meta, "wm")]
+    cmds: list[Command] = [("HGET", layout.meta, "wm"), ("HGET", layout.meta, "history_ms")]
     steps: list[Callable[[ReadResult, Iterable], None]] = []
 
     def on(n: int, fn: Callable[..., None]) -> None:
@@ -403,7 +407,9 @@ def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int) -> ReadPlan:
     def parse(replies: list) -> ReadResult:
         it = iter(replies)
         wm = next(it)
+        kept = next(it)
         out = ReadResult(watermark_ms=None if wm is None else int(wm))
+        out.history_ms = None if kept is None else int(kept)
         for step in steps:
             step(out, it)
         return out

@@ -97,17 +97,20 @@ class RedisStore:
     """A StateStore in Redis (a real server, or fakeredis for the embedded default and tests).
 
     ``history_ms``: how long before its watermark it answers reads exactly (arrival-tagged
-    logs kept that long); ``namespace`` prefixes every key; ``ttl_margin_s`` is added to every
-    key's lifetime. Lifetimes are wall-clock seconds derived from the longest window, the
-    vehicle expiry, the route days and the history (see ``Layout``).
+    logs kept that long, recorded in the state by every batch); None for a reader that takes
+    the history the writers recorded (``cellpulse serve``'s default). A reader never answers
+    further back than the writers keep. ``namespace`` prefixes every key; ``ttl_margin_s`` is
+    added to every key's lifetime. Lifetimes are wall-clock seconds derived from the longest
+    window, the vehicle expiry, the route days and the history (see ``Layout``).
     """
 
     def __init__(self, client: Any, config: EngineConfig | None = None, *,
-                 history_ms: int = 0, namespace: str = "cellpulse",
+                 history_ms: int | None = 0, namespace: str = "cellpulse",
                  ttl_margin_s: int = 600) -> None:
         self.client = client
         self.config = config or EngineConfig()
-        self.history_ms = int(history_ms)
+        self.history_from_state = history_ms is None
+        self.history_ms = 0 if history_ms is None else int(history_ms)
         self.layout = Layout(self.config, namespace, self.history_ms, ttl_margin_s)
         self._apply = client.register_script(APPLY_LUA)
 
@@ -136,6 +139,9 @@ class RedisStore:
                 if r is not None}
 
     def apply(self, delta: Delta) -> None:
+        if self.history_from_state:
+            raise TypeError("a store opened with history_ms=None reads the writers' history; "
+                            "writers must give their own history_ms")
         checks, ops = delta_ops(delta, self.layout, os.urandom(4).hex())
         if not checks and not ops:
             return
@@ -158,7 +164,8 @@ class RedisStore:
         t = request.as_of_ms
         if t is None:
             t = self.watermark_ms() or 0
-        plan = read_plan(request, self.layout, t)
+        plan = read_plan(request, self.layout, t,
+                         with_logs=True if self.history_from_state else None)
         pipe = self.client.pipeline(transaction=True)
         for cmd in plan.commands:
             pipe.execute_command(*cmd)
@@ -172,15 +179,22 @@ class RedisStore:
         out = plan.parse(replies)
         wm = out.watermark_ms
         if wm is not None and t < wm:
-            if not self.history_ms or t < wm - self.history_ms:
+            kept = self.effective_history_ms(out.history_ms)
+            if not kept or t < wm - kept:
                 raise AsOfError(
                     f"as of {t} ms is before what this store can answer: its watermark is {wm} "
-                    f"ms and it keeps {self.history_ms} ms of history"
+                    f"ms and it keeps {kept} ms of history"
                 )
         if request.with_progress:
             out.positions = parse_positions(nxt, arr)
             out.highwaters = {_s(k): int(v) for k, v in hw.items()}
         return out
+
+    def effective_history_ms(self, recorded: int | None) -> int:
+        """How far back reads are answered: never beyond what the writers recorded keeping."""
+        if self.history_from_state:
+            return recorded or 0
+        return self.history_ms if recorded is None else min(self.history_ms, recorded)
 
     def watermark_ms(self) -> int | None:
         wm = self.client.hget(self.layout.meta, "wm")

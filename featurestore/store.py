@@ -137,6 +137,7 @@ class ReadResult:
     watermark_ms: int | None = None
     positions: dict[str, SourcePosition] | None = None  # with_progress only
     highwaters: dict[str, int] | None = None  # with_progress only: partition -> end offset
+    history_ms: int | None = None  # the history the writers keep, where the store records it
 
 
 @runtime_checkable

@@ -10,6 +10,7 @@ import pytest
 from redis.crc import key_slot
 
 from featurestore.engine import Engine
+from featurestore.lookup import AsOfError, Lookup
 from featurestore.redis_store import RedisStore
 from featurestore.schema import Fix
 from featurestore.store import SourceSpan, StaleBatchError
@@ -110,3 +111,22 @@ def test_two_consumers_of_one_partition_cannot_both_apply(redis_url: str) -> Non
         Engine(b).process(fx[1:], spans={"fixes:0": SourceSpan(1, 4, fx[3].arrival_ms)})
     assert b.load_vehicles(["v1"])["v1"].event_ms == fx[1].event_ms
     assert dict(b.offsets()) == {"fixes:0": 2}
+
+
+def test_readers_never_answer_beyond_the_writers_history(redis_url: str) -> None:
+    t0 = 1_780_272_000_000
+    fx = [Fix("v1", t0 + 15_000 * k, -33.2 + k / 100, -20.6, "vacant", t0 + 15_000 * k + 300)
+          for k in range(8)]
+    writer = RedisStore.from_url(redis_url, history_ms=60_000)
+    Engine(writer).process(fx)
+    wm = fx[-1].arrival_ms
+    auto = Lookup(RedisStore.from_url(redis_url, history_ms=None))  # what serve opens
+    greedy = Lookup(RedisStore.from_url(redis_url, history_ms=3_600_000))
+    want = Lookup(writer).vehicle("v1", wm - 60_000)
+    assert want["vehicle_fix_age_s"] == 0.3  # as of the 4th fix's arrival, 300 ms after it
+    for reader in (auto, greedy):
+        assert reader.vehicle("v1", wm - 60_000) == want
+        with pytest.raises(AsOfError, match="keeps 60000 ms of history"):
+            reader.vehicle("v1", wm - 60_001)
+    with pytest.raises(TypeError, match="writers must give their own history_ms"):
+        Engine(auto.store).process(fx)
