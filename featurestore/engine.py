@@ -209,6 +209,10 @@ class Engine:
                 )
         if spans:
             delta.spans.update(spans)
+        counts = Counter({"received": consumed, "accepted": accepted, "in_order": in_order,
+                          "out_of_order": accepted - in_order})
+        counts.update(f"rejected:{rej.reason}" for _, rej in rejected)
+        delta.counts = {k: v for k, v in counts.items() if v}
         if wm is not None:
             delta.watermark_ms = wm
             delta.retention = self.retention(wm)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections import deque
+from collections import Counter, deque
 from collections.abc import Callable, Collection, Mapping
 from typing import Any
 
@@ -53,6 +53,7 @@ class MemoryStore:
         self._presence: dict[tuple[str, str], dict[str, int]] = {}
         self._positions: dict[str, SourcePosition] = {}
         self._highwaters: dict[str, int] = {}
+        self._counts: Counter[str] = Counter()
         self._watermark: int | None = None
         self._applies = 0
 
@@ -82,6 +83,7 @@ class MemoryStore:
             self._presence.setdefault((move.cell, move.status), {})[vid] = move.event_ms
         for part, span in delta.spans.items():
             self._positions[part] = merge_position(self._positions.get(part), span)
+        self._counts.update(delta.counts)
         if delta.watermark_ms is not None:
             self._watermark = max(self._watermark or delta.watermark_ms, delta.watermark_ms)
         if self.history_ms:
@@ -219,6 +221,9 @@ class MemoryStore:
 
     def highwaters(self) -> dict[str, int]:
         return dict(self._highwaters)
+
+    def counters(self) -> dict[str, int]:
+        return dict(self._counts)
 
     # --- introspection (reports, tests) ------------------------------------------------
     def sizes(self) -> dict[str, int]:

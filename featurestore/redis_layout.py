@@ -19,6 +19,7 @@ keys and one route's keys each share a Redis Cluster slot):
 ``P:rl:{o.d}:HOUR``            zset    history: each completed trip, by arrival
 ``P:pos``, ``P:arr``           hash    per source partition: next offset, latest arrival applied
 ``P:hw``                       hash    per source partition: end offset seen by its consumer
+``P:counts``                   hash    messages applied by outcome (``rejected:<reason>``...)
 ``P:meta``                     hash    ``wm``: the watermark (latest arrival applied);
                                        ``history_ms``: the history the writers keep
 =============================  ======  ==========================================================
@@ -102,6 +103,10 @@ class Layout:
     @property
     def highwaters(self) -> str:
         return f"{self.namespace}:hw"
+
+    @property
+    def counts(self) -> str:
+        return f"{self.namespace}:counts"
 
     @property
     def meta(self) -> str:
@@ -256,6 +261,8 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
         ops.append(("H", layout.meta, "history_ms", str(layout.history_ms)))
     for key, seconds in ttl.items():
         ops.append(("E", key, str(seconds)))
+    for name, n in sorted(delta.counts.items()):
+        ops.append(("I", layout.counts, name, str(n)))
     for part, span in sorted(delta.spans.items()):
         ops.append(("H", layout.positions, part, str(span.next_offset)))
         if span.last_arrival_ms is not None:

@@ -210,6 +210,9 @@ class RedisStore:
         nxt, arr = pipe.execute()
         return parse_positions(nxt, arr)
 
+    def counters(self) -> dict[str, int]:
+        return {_s(k): int(v) for k, v in self.client.hgetall(self.layout.counts).items()}
+
     def highwaters(self) -> dict[str, int]:
         return {_s(k): int(v) for k, v in self.client.hgetall(self.layout.highwaters).items()}
 

@@ -102,6 +102,7 @@ class Delta:
     watermark_ms: int | None = None
     retention: Retention | None = None
     spans: dict[str, SourceSpan] = field(default_factory=dict)  # source partition -> span
+    counts: dict[str, int] = field(default_factory=dict)  # messages by outcome, this batch
     cell_log: list[CellLogEntry] = field(default_factory=list)
     route_log: list[RouteLogEntry] = field(default_factory=list)
     vehicle_log: list[VehicleLogEntry] = field(default_factory=list)
@@ -180,6 +181,11 @@ class StateStore(Protocol):
 
     def set_highwaters(self, ends: Mapping[str, int]) -> None:
         """Record source partitions' end offsets as their consumer last saw them."""
+        ...
+
+    def counters(self) -> dict[str, int]:
+        """Messages applied by outcome since the state began (``received``, ``accepted``,
+        ``in_order``, ``out_of_order``, ``rejected:<reason>``), counted once each."""
         ...
 
     def highwaters(self) -> dict[str, int]:

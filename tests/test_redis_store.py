@@ -53,14 +53,14 @@ def test_every_key_but_the_markers_has_its_lifetime(redis_url: str, fixes: list[
     for key in store.client.scan_iter("t:*", count=1000):
         kind = key.decode().split(":")[1]
         ttl = store.client.ttl(key)
-        if kind in ("pos", "arr", "hw", "meta"):
+        if kind in ("pos", "arr", "hw", "meta", "counts"):
             markers.add(kind)
             assert ttl == -1
             continue
         assert 0 < ttl <= want[kind], (key, ttl)
         seen[kind] = seen.get(kind, 0) + 1
     assert set(seen) == set(want), seen
-    assert markers == {"meta"}  # no source partitions in this test
+    assert markers == {"meta", "counts"}  # no source partitions in this test
 
 
 def test_history_logs_are_trimmed_to_the_history(redis_url: str, fixes: list[Fix]) -> None:

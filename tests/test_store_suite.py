@@ -175,3 +175,20 @@ def test_reads_as_of_earlier_moments(store: StateStore) -> None:
     first = lk.cell(mid["vehicle_cell"], t0 + 15_500)
     assert first["cell_pickups_5m"] == 1 and first["cell_occupied_now"] == 1
     assert lk.cell(mid["vehicle_cell"], t0 + 15_499)["cell_pickups_5m"] == 0
+
+
+def test_message_counts_are_applied_with_the_batch(store: StateStore) -> None:
+    from featurestore.engine import Engine
+    from featurestore.schema import Fix, Rejection
+
+    t0 = 1_780_272_000_000
+    fx = [Fix("a", t0 + 15_000 * k, -33.2, -20.6, "vacant", t0 + 15_000 * k + 500)
+          for k in range(3)]
+    eng = Engine(store)
+    eng.process([fx[0], fx[2], Rejection("malformed", "not JSON", b"{"), fx[1]],
+                spans={"p:0": SourceSpan(0, 4, fx[1].arrival_ms)})
+    eng.process([fx[2], fx[0]], spans={"p:0": SourceSpan(4, 6, fx[2].arrival_ms)})
+    with pytest.raises(StaleBatchError):  # a refused batch counts nothing
+        eng.process([fx[0]], spans={"p:0": SourceSpan(5, 6, fx[2].arrival_ms)})
+    assert store.counters() == {"received": 6, "accepted": 3, "in_order": 2, "out_of_order": 1,
+                                "rejected:malformed": 1, "rejected:duplicate": 2}
