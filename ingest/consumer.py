@@ -56,7 +56,7 @@ class LoopOptions:
     """How the loop polls and when it stops."""
 
     max_poll_records: int = 500
-    poll_timeout_s: float = 0.5
+    poll_timeout_s: float = 0.2  # also how soon a new assignment is positioned
     max_records: int | None = None  # stop once this many messages are applied
     idle_exit_s: float | None = None  # stop after this long without a message (while assigned)
     highwater_refresh_s: float = 5.0  # rewrite unchanged end offsets this often

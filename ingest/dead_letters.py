@@ -68,7 +68,7 @@ class DeadLetterSink(Protocol):
 class KafkaDeadLetters:
     """Dead letters to a Kafka topic (acks from all in-sync replicas, flushed per batch)."""
 
-    def __init__(self, bootstrap: str, topic: str, *, timeout_s: float = 30.0,
+    def __init__(self, bootstrap: str, topic: str, *, timeout_s: float = 10.0,
                  max_request_size: int = 8 * 1024 * 1024, producer: Any = None) -> None:
         self.topic = topic
         self.timeout_s = timeout_s
@@ -123,7 +123,10 @@ class KafkaDeadLetters:
         fut = self._producer.send(self.topic, key=d.record.key, value=d.record.value[:65536],
                                   headers=[*d.headers(), ("truncated_from", str(size).encode())])
         self._producer.flush(timeout=self.timeout_s)
-        if not fut.is_done or fut.failed():
+        if not fut.is_done:
+            raise DeadLetterError(f"dead-letter topic {self.topic!r}: not acknowledged within "
+                                  f"{self.timeout_s} s")
+        if fut.failed():
             raise DeadLetterError(f"dead-letter topic {self.topic!r}: {_text(fut.exception)}")
 
     def close(self) -> None:

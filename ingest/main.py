@@ -122,10 +122,15 @@ def _check(s: IngestSettings) -> None:
 def setup_logging(level: str) -> None:
     logging.basicConfig(level=getattr(logging, level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    # kafka-python logs every failed connection attempt; the loop logs one readable line per
-    # retry instead (its own messages return with --log-level debug).
+    # kafka-python logs every failed connection attempt in several lines; the source logs one
+    # readable line per attempt instead (the library's own lines return with --log-level debug)
     if level != "debug":
-        logging.getLogger("kafka").setLevel(logging.CRITICAL)
+        for handler in logging.getLogger().handlers:
+            handler.addFilter(_quiet_kafka)
+
+
+def _quiet_kafka(record: logging.LogRecord) -> bool:
+    return not record.name.startswith("kafka") or record.levelno >= logging.CRITICAL
 
 
 class StopFlag:

@@ -89,6 +89,8 @@ class KafkaSettings:
     fetch_max_wait_ms: int = 500
     request_timeout_ms: int = 30_000
     bootstrap_timeout_ms: int = 5_000
+    reconnect_backoff_ms: int = 100
+    reconnect_backoff_max_ms: int = 10_000
 
     def consumer_kwargs(self) -> dict[str, Any]:
         return {
@@ -98,6 +100,8 @@ class KafkaSettings:
             "fetch_max_wait_ms": self.fetch_max_wait_ms,
             "request_timeout_ms": max(self.request_timeout_ms, self.fetch_max_wait_ms + 1000),
             "bootstrap_timeout_ms": self.bootstrap_timeout_ms,
+            "reconnect_backoff_ms": self.reconnect_backoff_ms,
+            "reconnect_backoff_max_ms": self.reconnect_backoff_max_ms,
         }
 
 
@@ -146,7 +150,13 @@ class KafkaSource:
         self._lock = threading.Lock()
         self._pending: set[Any] = set()  # TopicPartitions waiting for a seek (paused)
         self._next: dict[Any, int] = {}  # TopicPartition -> next offset to hand out
-        self._consumer = self._connect(should_stop, backoff or Backoff())
+        self.watch = BrokerWatch(bootstrap, self.settings.reconnect_backoff_max_ms / 1000)
+        self.watch.attach()
+        try:
+            self._consumer = self._connect(should_stop, backoff or Backoff())
+        except BaseException:
+            self.watch.detach()
+            raise
         if partitions is not None:
             self._assign_static(list(partitions), should_stop, backoff or Backoff())
         else:
@@ -339,6 +349,59 @@ class KafkaSource:
             self._consumer.close(autocommit=False, timeout_ms=5000)
         except Exception as exc:  # noqa: BLE001 - closing anyway
             log.debug("closing the Kafka consumer: %s", exc)
+        finally:
+            self.watch.detach()
+
+
+class BrokerWatch(logging.Handler):
+    """One readable line per failed connection attempt to the broker, and one when it answers
+    again. kafka-python reconnects by itself (capped exponential backoff, ``reconnect_backoff_ms``
+    doubling up to ``reconnect_backoff_max_ms``, with jitter) and reports each attempt only in
+    its own loggers; this handler listens to them."""
+
+    LOGGERS = ("kafka.net.manager", "kafka.cluster")
+
+    def __init__(self, bootstrap: str, cap_s: float) -> None:
+        super().__init__(logging.INFO)
+        self.bootstrap = bootstrap
+        self.cap_s = cap_s
+        self.address = bootstrap
+        self.down_since: float | None = None
+        self.attempts = 0
+        self.outages = 0
+
+    def attach(self) -> None:
+        for name in self.LOGGERS:
+            logger = logging.getLogger(name)
+            if logger.getEffectiveLevel() > logging.INFO:
+                logger.setLevel(logging.INFO)
+            logger.addHandler(self)
+
+    def detach(self) -> None:
+        for name in self.LOGGERS:
+            logging.getLogger(name).removeHandler(self)
+
+    def emit(self, record: logging.LogRecord) -> None:
+        try:
+            msg = record.getMessage()
+        except Exception:  # noqa: BLE001 - a malformed record of the library
+            return
+        if msg.startswith("Initializing connection for node_id") and " at " in msg:
+            self.address = msg.split(" at ", 1)[1].split(" ", 1)[0]
+        elif msg.startswith(("Connection failed:", "Bootstrap attempt to")):
+            if self.down_since is None:
+                self.down_since = time.monotonic()
+                self.attempts = 0
+                self.outages += 1
+            self.attempts += 1
+            why = msg.split(": ", 1)[-1] if msg.startswith("Connection failed") else msg
+            log.warning("broker %s unreachable (%s); reconnecting with backoff doubling up to "
+                        "%.0f s (attempt %d)", self.address, why, self.cap_s, self.attempts)
+        elif self.down_since is not None and msg.startswith(("Updated metadata",
+                                                              "Bootstrap complete")):
+            log.info("broker %s is back after %.1f s", self.address,
+                     time.monotonic() - self.down_since)
+            self.down_since = None
 
 
 def _commit_done(offsets: Any, response: Any) -> None:
