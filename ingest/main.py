@@ -7,6 +7,7 @@ import argparse
 import json
 import logging
 import os
+import re
 import signal
 import socket
 import sys
@@ -212,7 +213,8 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
     if s.tape:
         from ingest.tape import TapeWriter
 
-        name = f"{socket.gethostname()}-{os.getpid()}"
+        host = re.sub(r"[^A-Za-z0-9_.-]", "-", socket.gethostname())[:80] or "ingest"
+        name = f"{host}-{os.getpid()}"  # one writer per process; never clashes
         tape = TapeWriter(s.tape, name)
         log.info("tape to %s (writer %s)", s.tape, name)
     options = LoopOptions(max_poll_records=s.max_poll_records, max_records=s.max_records,

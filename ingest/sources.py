@@ -88,7 +88,7 @@ class KafkaSettings:
     max_poll_records: int = 500
     fetch_max_wait_ms: int = 500
     request_timeout_ms: int = 30_000
-    bootstrap_timeout_ms: int = 5_000
+    bootstrap_timeout_ms: int = 3_000
     reconnect_backoff_ms: int = 100
     reconnect_backoff_max_ms: int = 10_000
 
@@ -192,8 +192,9 @@ class KafkaSource:
                 if should_stop():
                     raise SourceUnavailable(f"broker {self.bootstrap} unreachable") from None
                 wait = backoff.next()
-                log.warning("broker %s unreachable (%s); retrying in %.1f s",
-                            self.bootstrap, _describe(exc), wait)
+                log.warning("no answer from broker %s within %.0f s (%s); trying again in %.1f s",
+                            self.bootstrap, self.settings.bootstrap_timeout_ms / 1000,
+                            _describe(exc), wait)
                 backoff.sleep(wait, should_stop)
                 continue
             backoff.reset()
@@ -416,7 +417,9 @@ def _tp_name(tp: Any) -> str:
 def _describe(exc: BaseException) -> str:
     text = str(exc)
     name = type(exc).__name__
-    return f"{name}: {text}" if text and text != name else name
+    if not text or text == name:
+        return name
+    return text if text.startswith(name) else f"{name}: {text}"
 
 
 # --- files and stdin -------------------------------------------------------------------------
