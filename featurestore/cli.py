@@ -291,7 +291,10 @@ def _ingest_parser(sub: Any) -> None:
                    help="also record every message received as hourly Parquet files in DIR "
                         "(readable by cellpulse replay)")
     g.add_argument("--metrics-port", type=int, metavar="PORT",
-                   help="serve Prometheus metrics on 127.0.0.1:PORT/metrics")
+                   help="serve Prometheus metrics on PORT (path /metrics)")
+    g.add_argument("--metrics-host", metavar="ADDR",
+                   help="address of the metrics server (default 127.0.0.1; 0.0.0.0 in a "
+                        "container)")
     g = p.add_argument_group("consumer tuning")
     g.add_argument("--max-poll-records", type=int, metavar="N",
                    help="most messages per batch (default 500)")

@@ -63,6 +63,7 @@ class IngestSettings:
     max_records: int | None = None
     idle_exit: float | None = None
     metrics_port: int | None = None
+    metrics_host: str = "127.0.0.1"
     log_level: str = "info"
 
 
@@ -177,8 +178,8 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
         raise ValueError(f"--redis-url {s.redis_url!r}: {exc}") from None
     stats = ConsumerStats()
     if s.metrics_port is not None:
-        start_metrics_server(stats, s.metrics_port)
-        log.info("metrics on http://127.0.0.1:%d/metrics", s.metrics_port)
+        start_metrics_server(stats, s.metrics_port, s.metrics_host)
+        log.info("metrics on http://%s:%d/metrics", s.metrics_host, s.metrics_port)
     source: Any
     if s.from_file is not None:
         source = FileSource(s.from_file, arrival_from_message=s.arrival_from_message)
