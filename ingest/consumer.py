@@ -59,7 +59,7 @@ class LoopOptions:
     poll_timeout_s: float = 0.2  # also how soon a new assignment is positioned
     max_records: int | None = None  # stop once this many messages are applied
     idle_exit_s: float | None = None  # stop after this long without a message (while assigned)
-    highwater_refresh_s: float = 5.0  # rewrite unchanged end offsets this often
+    highwater_refresh_s: float = 1.0  # rewrite unchanged end offsets this often
     commit_interval_s: float = 1.0  # Kafka commits for lag monitoring, at most this often
     progress_interval_s: float = 10.0  # an INFO line with the counters this often
     backoff_initial_s: float = 0.2

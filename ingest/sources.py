@@ -150,6 +150,7 @@ class KafkaSource:
         self._lock = threading.Lock()
         self._pending: set[Any] = set()  # TopicPartitions waiting for a seek (paused)
         self._next: dict[Any, int] = {}  # TopicPartition -> next offset to hand out
+        self._warned: dict[str, float] = {}
         self.watch = BrokerWatch(bootstrap, self.settings.reconnect_backoff_max_ms / 1000)
         self.watch.attach()
         try:
@@ -263,6 +264,8 @@ class KafkaSource:
                 if nxt is None or tp in self._pending:
                     continue  # not positioned from the store yet: fetched before the seek
                 name = partition_name(tp.topic, tp.partition)
+                if recs and recs[-1].offset < nxt:
+                    self._warn_behind(name, recs[0].offset, nxt)
                 for r in recs:
                     if r.offset < nxt:
                         continue  # already handed out (a fetch from before a seek)
@@ -272,6 +275,14 @@ class KafkaSource:
                     nxt = r.offset + 1
                 self._next[tp] = nxt
         return out
+
+    def _warn_behind(self, name: str, offset: int, nxt: int) -> None:
+        now = time.monotonic()
+        if now - self._warned.get(name, float("-inf")) >= 60.0:
+            self._warned[name] = now
+            log.warning("%s: the broker sent offset %d but the state has applied up to %d; "
+                        "skipping what is applied (was the topic deleted and created again? "
+                        "then the offsets in Redis no longer match it)", name, offset, nxt - 1)
 
     def seek(self, offsets: Mapping[str, int]) -> None:
         # Holds the lock across the consumer calls: a rebalance that lands meanwhile runs its
