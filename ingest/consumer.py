@@ -162,6 +162,7 @@ class ConsumerLoop:
         opts = self.options
         last_record = time.monotonic()
         progress_at = time.monotonic()
+        unassigned_since: float | None = None
         try:
             while not self._stopping:
                 if opts.max_records is not None and self.stats.received >= opts.max_records:
@@ -194,6 +195,14 @@ class ConsumerLoop:
                 if now - progress_at >= opts.progress_interval_s:
                     progress_at = now
                     self._log_progress()
+                if self.source.assignment():
+                    unassigned_since = None
+                elif unassigned_since is None:
+                    unassigned_since = now
+                elif now - unassigned_since >= 30.0:
+                    unassigned_since = now
+                    log.warning("no partition assigned for 30 s: does the topic exist, or do "
+                                "other members of the group hold every partition?")
         finally:
             self._close()
         return self.stats
@@ -330,8 +339,8 @@ class ConsumerLoop:
 
     def _recovered(self) -> None:
         if self._outage is not None:
-            log.info("%s is back after %.1f s; resumed from the offsets stored with the state",
-                     self._outage, time.monotonic() - self._outage_since)
+            log.info("%s is back after %.1f s", self._outage,
+                     time.monotonic() - self._outage_since)
             self._outage = None
             self._backoff.reset()
 

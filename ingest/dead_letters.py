@@ -79,9 +79,29 @@ class KafkaDeadLetters:
             producer = KafkaProducer(
                 bootstrap_servers=bootstrap.split(","), acks="all", linger_ms=5,
                 max_request_size=max_request_size, request_timeout_ms=int(timeout_s * 1000),
+                max_block_ms=int(timeout_s * 1000),
                 client_id=f"cellpulse-dead-letters-{os.getpid()}",
             )
         self._producer = producer
+        self._check_topic(bootstrap)
+
+    def _check_topic(self, bootstrap: str) -> None:
+        """Fail at start, readably, when the topic does not exist (and the broker does not
+        create topics on first use)."""
+        from kafka.errors import KafkaError
+
+        try:
+            found = self._producer.partitions_for(self.topic)
+        except KafkaError as exc:
+            found = None
+            why = _text(exc)
+        else:
+            why = "no partitions"
+        if not found:
+            self._producer.close(timeout=1)
+            raise DeadLetterError(
+                f"dead-letter topic {self.topic!r} not found on {bootstrap} ({why}): create it, "
+                f"or name another with --dead-letter-topic")
 
     def send(self, letters: Sequence[DeadLetter]) -> None:
         if not letters:

@@ -164,8 +164,15 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
     """The ``cellpulse ingest`` command; prints the final counters as JSON."""
     from featurestore.redis_store import RedisStore
     from ingest.consumer import ConsumerLoop, LoopOptions
-    from ingest.dead_letters import FileDeadLetters, KafkaDeadLetters
-    from ingest.sources import FileSource, KafkaSettings, KafkaSource, parse_partitions
+    from ingest.dead_letters import DeadLetterError, FileDeadLetters, KafkaDeadLetters
+    from ingest.sources import (
+        FileSource,
+        KafkaSettings,
+        KafkaSource,
+        SourceError,
+        SourceUnavailable,
+        parse_partitions,
+    )
     from ingest.stats import ConsumerStats, start_metrics_server
 
     s = resolve_settings(args)
@@ -182,7 +189,10 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
         log.info("metrics on http://%s:%d/metrics", s.metrics_host, s.metrics_port)
     source: Any
     if s.from_file is not None:
-        source = FileSource(s.from_file, arrival_from_message=s.arrival_from_message)
+        try:
+            source = FileSource(s.from_file, arrival_from_message=s.arrival_from_message)
+        except SourceError as exc:
+            raise ValueError(str(exc)) from None
         dl_path = s.dead_letter_file or (
             "cellpulse-stdin.dead-letters.jsonl" if s.from_file == "-"
             else f"{s.from_file}.dead-letters.jsonl")
@@ -195,18 +205,21 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
                                  max_poll_records=s.max_poll_records,
                                  fetch_max_wait_ms=s.fetch_max_wait_ms)
         parts = parse_partitions(s.partitions) if s.partitions is not None else None
-        from ingest.sources import SourceUnavailable
-
         try:
             source = KafkaSource(s.bootstrap, s.topic, s.group, partitions=parts, start=s.start,
                                  settings=settings, should_stop=stop)
         except SourceUnavailable as exc:
             log.info("stopped before starting: %s", exc)
             return 0
+        except SourceError as exc:
+            raise ValueError(str(exc)) from None
         dl_topic = s.dead_letter_topic or f"{s.topic}-dead-letters"
         try:
             dead_letters = KafkaDeadLetters(s.bootstrap, dl_topic)
-        except Exception:
+        except DeadLetterError as exc:
+            source.close()
+            raise ValueError(str(exc)) from None
+        except BaseException:
             source.close()
             raise
         log.info("dead letters to topic %s", dl_topic)
