@@ -121,6 +121,21 @@ def parse_partitions(text: str) -> list[int]:
     return parts
 
 
+def _listener(source: KafkaSource) -> Any:
+    from kafka import ConsumerRebalanceListener
+
+    class Listener(ConsumerRebalanceListener):
+        """Runs on kafka-python's IO thread; only marks partitions (no Redis call there)."""
+
+        def on_partitions_revoked(self, revoked):
+            source._revoked(revoked)
+
+        def on_partitions_assigned(self, assigned):
+            source._assigned(assigned)
+
+    return Listener()
+
+
 class KafkaSource:
     """A kafka-python consumer over one topic.
 
@@ -151,6 +166,7 @@ class KafkaSource:
         self._pending: set[Any] = set()  # TopicPartitions waiting for a seek (paused)
         self._next: dict[Any, int] = {}  # TopicPartition -> next offset to hand out
         self._warned: dict[str, float] = {}
+        self._exact: set[Any] = set()  # seeked to a stored offset, no record read since
         self.watch = BrokerWatch(bootstrap, self.settings.reconnect_backoff_max_ms / 1000)
         self.watch.attach()
         try:
@@ -158,21 +174,14 @@ class KafkaSource:
         except BaseException:
             self.watch.detach()
             raise
-        if partitions is not None:
-            self._assign_static(list(partitions), should_stop, backoff or Backoff())
-        else:
-            from kafka import ConsumerRebalanceListener
-
-            source = self
-
-            class _Listener(ConsumerRebalanceListener):
-                def on_partitions_revoked(self, revoked):  # IO thread of kafka-python
-                    source._revoked(revoked)
-
-                def on_partitions_assigned(self, assigned):
-                    source._assigned(assigned)
-
-            self._consumer.subscribe([topic], listener=_Listener())
+        try:
+            if partitions is not None:
+                self._assign_static(list(partitions), should_stop, backoff or Backoff())
+            else:
+                self._consumer.subscribe([topic], listener=_listener(self))
+        except BaseException:
+            self.close()
+            raise
 
     # --- connection ----------------------------------------------------------------------
     def _connect(self, should_stop: Callable[[], bool], backoff: Backoff) -> Any:
@@ -234,6 +243,7 @@ class KafkaSource:
             self._pending.update(tps)
             for tp in tps:
                 self._next.pop(tp, None)
+                self._exact.discard(tp)
             if tps:
                 self._consumer.pause(*tps)
         if tps:
@@ -245,6 +255,7 @@ class KafkaSource:
             for tp in tps:
                 self._pending.discard(tp)
                 self._next.pop(tp, None)
+                self._exact.discard(tp)
         if tps:
             log.info("revoked %s", ", ".join(sorted(_tp_name(tp) for tp in tps)))
 
@@ -265,7 +276,15 @@ class KafkaSource:
                     continue  # not positioned from the store yet: fetched before the seek
                 name = partition_name(tp.topic, tp.partition)
                 if recs and recs[-1].offset < nxt:
-                    self._warn_behind(name, recs[0].offset, nxt)
+                    self._warn(name, f"the broker sent offset {recs[0].offset} but the state "
+                               f"has applied up to {nxt - 1}; skipping what is applied (was the "
+                               "topic deleted and created again? then the offsets in Redis no "
+                               "longer match it)")
+                elif recs and nxt > 0 and recs[0].offset > nxt and tp in self._exact:
+                    self._warn(name, f"offsets {nxt}..{recs[0].offset - 1} are not on the broker "
+                               "(deleted by retention before they were applied, or transaction "
+                               f"markers); continuing at {recs[0].offset}")
+                self._exact.discard(tp)
                 for r in recs:
                     if r.offset < nxt:
                         continue  # already handed out (a fetch from before a seek)
@@ -276,13 +295,11 @@ class KafkaSource:
                 self._next[tp] = nxt
         return out
 
-    def _warn_behind(self, name: str, offset: int, nxt: int) -> None:
+    def _warn(self, name: str, text: str) -> None:
         now = time.monotonic()
-        if now - self._warned.get(name, float("-inf")) >= 60.0:
+        if now - self._warned.get(name, float("-inf")) >= 60.0:  # at most once a minute
             self._warned[name] = now
-            log.warning("%s: the broker sent offset %d but the state has applied up to %d; "
-                        "skipping what is applied (was the topic deleted and created again? "
-                        "then the offsets in Redis no longer match it)", name, offset, nxt - 1)
+            log.warning("%s: %s", name, text)
 
     def seek(self, offsets: Mapping[str, int]) -> None:
         # Holds the lock across the consumer calls: a rebalance that lands meanwhile runs its
@@ -305,6 +322,8 @@ class KafkaSource:
                     continue  # revoked meanwhile
                 # with the start policy the broker resolves the offset: any offset >= 0 is next
                 self._next[tp] = int(off) if off is not None else 0
+                if off is not None:
+                    self._exact.add(tp)  # the first records must start there
                 self._pending.discard(tp)
                 done.append((tp, off))
         for tp, off in done:
@@ -329,8 +348,14 @@ class KafkaSource:
                 hw = self._consumer.highwater(tp)
             except Exception:  # noqa: BLE001 - revoked between the two calls
                 continue
-            if hw is not None:
-                out[_tp_name(tp)] = int(hw)
+            if hw is None:
+                continue
+            out[_tp_name(tp)] = int(hw)
+            nxt = self._next.get(tp)
+            if nxt is not None and hw < nxt:
+                self._warn(_tp_name(tp), f"the broker's end offset {hw} is below the offset "
+                           f"{nxt} the state has applied up to (was the topic deleted and "
+                           "created again? then the offsets in Redis no longer match it)")
         return out
 
     def commit(self, offsets: Mapping[str, int]) -> None:
