@@ -124,3 +124,11 @@ def redis_cell_fixes(client, namespace: str = "cellpulse") -> int:
 def memory_cell_fixes(store: MemoryStore) -> int:
     return sum(v[0] for buckets in store.dump()["cells"].values()  # type: ignore[union-attr]
                for v in buckets.values())
+
+
+def replay_counters(engine_stats) -> dict[str, int]:
+    """A replay's message counts in the form the stores keep them (``StateStore.counters``)."""
+    out = {"received": engine_stats.received, "accepted": engine_stats.accepted,
+           "in_order": engine_stats.in_order, "out_of_order": engine_stats.out_of_order}
+    out.update({f"rejected:{reason}": n for reason, n in engine_stats.rejected.items()})
+    return {k: v for k, v in out.items() if v}

@@ -21,6 +21,7 @@ from ingest_support import (
     compare_with_replay,
     produce_day,
     redis_cell_fixes,
+    replay_counters,
     replayed,
 )
 from kafka import KafkaConsumer, TopicPartition
@@ -153,6 +154,7 @@ def _check_end_state(url: str, bootstrap: str, topic: str, total: int, replay) -
         assert counted["cells"] > 100 and counted["routes"] > 10
         # no fix lost, none counted twice
         assert redis_cell_fixes(store.client) == engine_stats.accepted
+        assert store.counters() == replay_counters(engine_stats)  # every message once
     finally:
         store.client.close()
     # every rejected message has a dead letter (a crash may have repeated some)

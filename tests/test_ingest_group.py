@@ -13,7 +13,13 @@ import uuid
 from pathlib import Path
 
 import pytest
-from ingest_support import compare_with_replay, produce_day, redis_cell_fixes, replayed
+from ingest_support import (
+    compare_with_replay,
+    produce_day,
+    redis_cell_fixes,
+    replay_counters,
+    replayed,
+)
 
 from featurestore.redis_store import RedisStore
 from ingest.citysim import CityConfig, write_jsonl
@@ -94,6 +100,7 @@ def test_a_second_member_takes_over_partitions_and_the_state_equals_replay(
     mem, engine_stats = replay
     compare_with_replay(store, mem)
     assert redis_cell_fixes(store.client) == engine_stats.accepted
+    assert store.counters() == replay_counters(engine_stats)
     # every message was applied once: what each member counted adds up to the topic
     assert first.stats.received + second.stats.received == total
 
@@ -132,3 +139,4 @@ def test_sigterm_stops_cleanly_and_a_restart_completes_the_state(
     mem, engine_stats = replay
     compare_with_replay(store, mem)
     assert redis_cell_fixes(store.client) == engine_stats.accepted
+    assert store.counters() == replay_counters(engine_stats)

@@ -12,7 +12,7 @@ import fakeredis
 import orjson
 import pytest
 import redis
-from ingest_support import compare_with_replay, redis_cell_fixes, replayed
+from ingest_support import compare_with_replay, redis_cell_fixes, replay_counters, replayed
 
 from featurestore.config import EngineConfig
 from featurestore.redis_store import RedisStore
@@ -71,6 +71,7 @@ def test_a_file_ends_equal_to_replay_and_counts_add_up(day: Path, replay, tmp_pa
     compare_with_replay(store, mem)
     # every accepted fix is counted in exactly one cell counter
     assert redis_cell_fixes(store.client) == engine_stats.accepted
+    assert store.counters() == replay_counters(engine_stats)
 
 
 def test_a_second_run_resumes_after_the_stored_offset(day: Path, replay, tmp_path: Path) -> None:
@@ -84,6 +85,7 @@ def test_a_second_run_resumes_after_the_stored_offset(day: Path, replay, tmp_pat
     assert first.accepted + second.accepted == engine_stats.accepted
     compare_with_replay(store, mem)
     assert redis_cell_fixes(store.client) == engine_stats.accepted
+    assert store.counters() == replay_counters(engine_stats)
 
 
 def test_a_stale_batch_is_refused_and_the_loop_resumes_from_the_store(
@@ -102,6 +104,7 @@ def test_a_stale_batch_is_refused_and_the_loop_resumes_from_the_store(
     assert zombie.stats.received + other.stats.received == len(_lines(day))
     compare_with_replay(store, mem)
     assert redis_cell_fixes(store.client) == engine_stats.accepted
+    assert store.counters() == replay_counters(engine_stats)
 
 
 class _Flaky:
@@ -141,6 +144,7 @@ def test_lost_connections_never_lose_or_double_a_batch(day: Path, replay, tmp_pa
     assert stats.received == stats.accepted + stats.rejected_total
     compare_with_replay(store, mem)
     assert redis_cell_fixes(store.client) == engine_stats.accepted
+    assert store.counters() == replay_counters(engine_stats)
 
 
 def test_dead_letter_file_keeps_reason_source_and_exact_bytes(tmp_path: Path) -> None:
