@@ -238,8 +238,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--host", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, help="port to listen on (default 8000)")
     p.add_argument("--history", type=float, metavar="SECONDS",
-                   help="how far before the watermark lookups are answered; must not exceed "
-                        "the consumers' --history (default 900, as cellpulse ingest)")
+                   help="answer lookups at most this far before the watermark (default: as "
+                        "far as the consumers keep history, which they record in the state; "
+                        "a larger value is capped at theirs)")
     p.add_argument("--log-level", choices=("critical", "error", "warning", "info", "debug"),
                    help="server log level; debug also logs every request (default info)")
     _engine_flags(p)

@@ -70,6 +70,9 @@ class FeatureClient:
         ``known_at``). Raises BadRequest for invalid keys and AsOfError for a moment the
         store can no longer answer."""
         rq = [r if isinstance(r, RouteQuery) else RouteQuery(*r) for r in routes]
+        rq = [RouteQuery(r.origin_cell.lower(), r.dest_cell.lower(), r.hour)
+              if isinstance(r.origin_cell, str) and isinstance(r.dest_cell, str) else r
+              for r in rq]
         self._check(vehicles, cells, rq)
         if as_of == "latest":
             t = self.known_at_ms()

@@ -126,6 +126,7 @@ class MemoryStore:
         if request.with_progress:
             out.positions = dict(self._positions)
             out.highwaters = dict(self._highwaters)
+            out.counts = dict(self._counts)
         return out
 
     def _read_past(self, request: ReadRequest, t: int) -> ReadResult:

@@ -173,9 +173,10 @@ class RedisStore:
             pipe.hgetall(self.layout.positions)
             pipe.hgetall(self.layout.arrivals)
             pipe.hgetall(self.layout.highwaters)
+            pipe.hgetall(self.layout.counts)
         replies = pipe.execute()
         if request.with_progress:
-            *replies, nxt, arr, hw = replies
+            *replies, nxt, arr, hw, counts = replies
         out = plan.parse(replies)
         wm = out.watermark_ms
         if wm is not None and t < wm:
@@ -188,6 +189,7 @@ class RedisStore:
         if request.with_progress:
             out.positions = parse_positions(nxt, arr)
             out.highwaters = {_s(k): int(v) for k, v in hw.items()}
+            out.counts = {_s(k): int(v) for k, v in counts.items()}
         return out
 
     def effective_history_ms(self, recorded: int | None) -> int:

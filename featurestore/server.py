@@ -31,7 +31,7 @@ from prometheus_client import (
     ProcessCollector,
     generate_latest,
 )
-from prometheus_client.core import GaugeMetricFamily
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from pydantic import BaseModel, ConfigDict, Field, create_model, model_validator
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
@@ -46,9 +46,6 @@ from featurestore.store import ReadRequest
 
 log = logging.getLogger("cellpulse.serve")
 
-# The consumers' default (``cellpulse ingest --history``): the server must not answer further
-# back than the consumers keep arrival-tagged history.
-DEFAULT_HISTORY_S = 900.0
 MAX_BODY_BYTES = 1 << 20  # a batch of 1,000 route keys is about 100 kB
 NULL_NOTE = ("JSON has no NaN: a float feature whose value is undefined (NaN in Python and in "
              "training sets, e.g. a heading with no moving step) is sent as null.")
@@ -339,6 +336,23 @@ class LiveCollector:
                 end.add_metric([part], hw)
                 lag.add_metric([part], max(0, hw - nxt))
         out = [up, info, lag, applied, end]
+        counts = raw.counts or {}
+        msgs = CounterMetricFamily(
+            "cellpulse_state_messages",
+            "Messages applied to the state by all consumers, by outcome (received, accepted, "
+            "in_order, out_of_order), counted once each: stored with the state in the same "
+            "atomic step as the offsets. rate() gives messages per second.",
+            labels=["outcome"])
+        rejected = CounterMetricFamily(
+            "cellpulse_state_rejected",
+            "Messages rejected by all consumers, by reason (dead letters), counted once each.",
+            labels=["reason"])
+        for name, n in sorted(counts.items()):
+            if name.startswith("rejected:"):
+                rejected.add_metric([name.split(":", 1)[1]], n)
+            else:
+                msgs.add_metric([name], n)
+        out += [msgs, rejected]
         known = known_at(raw.watermark_ms, raw.positions or {}, raw.highwaters or {})
         for name, value, text in (
             ("cellpulse_watermark_seconds", raw.watermark_ms,
@@ -349,6 +363,15 @@ class LiveCollector:
             if value is not None:
                 out.append(GaugeMetricFamily(name, text, value=value / 1000.0))
         return out
+
+
+def _history_ms(store: Any, raw: Any) -> int:
+    """How far before the watermark lookups are answered: the server's own bound and the
+    history the consumers record in the state, whichever is smaller."""
+    effective = getattr(store, "effective_history_ms", None)
+    if effective is not None:
+        return effective(raw.history_ms)
+    return int(getattr(store, "history_ms", 0) or 0)
 
 
 def _progress(client: FeatureClient) -> Any:
@@ -572,10 +595,10 @@ def create_app(client: FeatureClient, *, registry: CollectorRegistry | None = No
              responses={503: {"model": HealthResponse, "description": "Redis did not answer"}},
              summary="Redis reachable, watermark, known_at, per-partition lag")
     async def get_health() -> Any:
-        base = {"catalog_version": catalog.version,
-                "history_s": getattr(client.store, "history_ms", 0) / 1000.0}
+        base = {"catalog_version": catalog.version, "history_s": 0.0}
         try:
             raw = await run_in_threadpool(_progress, client)
+            base["history_s"] = _history_ms(client.store, raw) / 1000.0
         except redis.exceptions.RedisError as exc:
             metrics.rejected.labels("store_unavailable").inc()
             body = HealthResponse(status="unavailable", redis=False,
@@ -631,10 +654,11 @@ def _setting(flag: Any, name: str, parse: Callable[[str], Any], default: Any,
         raise ValueError(f"environment variable {ENV_PREFIX}{name}={raw!r}: {exc}") from None
 
 
-def open_store(url: str, config: EngineConfig, history_ms: int) -> Any:
-    """The RedisStore to serve from. Fails fast when Redis is away (one immediate retry, for
-    a pooled connection that a Redis restart closed; 1 s to connect, 2 s to answer): callers
-    have deadlines of their own, and a 503 now beats a late vector."""
+def open_store(url: str, config: EngineConfig, history_ms: int | None) -> Any:
+    """The RedisStore to serve from (``history_ms`` None: as far back as the consumers keep).
+    Fails fast when Redis is away (one immediate retry, for a pooled connection that a Redis
+    restart closed; 1 s to connect, 2 s to answer): callers have deadlines of their own, and
+    a 503 now beats a late vector."""
     from redis.backoff import NoBackoff
     from redis.retry import Retry
 
@@ -669,19 +693,22 @@ def serve(*, redis_url: str | None, host: str | None = None, port: int | None = 
     port = _setting(port, "PORT", int, 8000, env)
     if not 0 <= port <= 65535:
         raise ValueError(f"port {port} is not 0..65535")
-    history = _setting(history_s, "HISTORY", float, DEFAULT_HISTORY_S, env)
-    if not history >= 0:
+    history = _setting(history_s, "HISTORY", float, None, env)
+    if history is not None and not history >= 0:
         raise ValueError(f"history {history} s must be >= 0")
     level = _setting(log_level, "LOG_LEVEL", str, "info", env).lower()
     cfg = config or EngineConfig()
-    client = FeatureClient(open_store(url, cfg, round(history * 1000)), cfg)
+    client = FeatureClient(open_store(url, cfg, None if history is None else round(history * 1000)),
+                           cfg)
     try:
         _progress(client)
     except redis.exceptions.RedisError as exc:  # serve anyway: health says 503 until it is back
         print(f"cellpulse serve: warning: Redis at {redact_url(url)} does not answer yet ({exc}); "
               "lookups and /v1/health answer 503 until it does", file=sys.stderr)
     print(f"cellpulse serve: http://{host}:{port} (docs at /docs) from {redact_url(url)}, "
-          f"catalog {client.catalog.version}, history {history:g} s", file=sys.stderr)
+          f"catalog {client.catalog.version}, history "
+          f"{'as the consumers keep' if history is None else f'up to {history:g} s'}",
+          file=sys.stderr)
     uvicorn.run(create_app(client), host=host, port=port, log_level=level,
                 access_log=level == "debug", timeout_graceful_shutdown=10)
     return 0

@@ -139,6 +139,7 @@ class ReadResult:
     positions: dict[str, SourcePosition] | None = None  # with_progress only
     highwaters: dict[str, int] | None = None  # with_progress only: partition -> end offset
     history_ms: int | None = None  # the history the writers keep, where the store records it
+    counts: dict[str, int] | None = None  # with_progress only: messages applied by outcome
 
 
 @runtime_checkable

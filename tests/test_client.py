@@ -62,12 +62,13 @@ def test_response_carries_version_known_at_and_staleness() -> None:
 def test_cells_and_routes_in_request_order() -> None:
     client, _ = _client()
     cell = client.vehicle("veh-1", as_of="latest")["vehicle_cell"]
-    got = client.vectors(cells=[cell.upper(), cell], routes=[("87c19cbb2ffffff",
+    got = client.vectors(cells=[cell.upper(), cell], routes=[("87C19CBB2FFFFFF",
                                                             "87c19cbb2ffffff", 3)],
                          as_of="latest")
     assert [c["cell"] for c in got.cells] == [cell, cell]
     assert got.cells[0]["cell_fixes_5m"] >= 1
     assert got.routes[0]["route_trips"] == 0 and got.routes[0]["hour"] == 3
+    assert got.routes[0]["origin_cell"] == "87c19cbb2ffffff"  # upper case read as lower
 
 
 @pytest.mark.parametrize(("kwargs", "message"), [

@@ -194,8 +194,7 @@ def live(kafka_broker, redis_url: str, tmp_path: Path) -> Iterator[dict]:
                 stdout=log.open("wb"), stderr=subprocess.STDOUT, env=env))
         serve_log = tmp_path / "serve.log"
         procs.append(subprocess.Popen(
-            _cli("serve", "--redis-url", redis_url, "--port", str(port), "--history",
-                 str(HISTORY_S)),
+            _cli("serve", "--redis-url", redis_url, "--port", str(port)),  # consumers' history
             stdout=serve_log.open("wb"), stderr=subprocess.STDOUT, env=env))
         base = f"http://127.0.0.1:{port}"
         deadline = time.monotonic() + 30

@@ -471,9 +471,11 @@ def test_serve_settings_from_flags_and_environment(monkeypatch, capsys) -> None:
         "127.0.0.2", 9002, "info", False)
     client = run["app"].state.client
     assert client.config.cell_resolution == 9 and client.store.history_ms == 60_000
-    assert f"catalog {client.catalog.version}, history 60 s" in capsys.readouterr().err
-    assert cli_main(["serve"]) == 0  # the consumers' default history: 900 s
-    assert runs[-1]["app"].state.client.store.history_ms == 900_000 and runs[-1]["port"] == 9001
+    assert f"catalog {client.catalog.version}, history up to 60 s" in capsys.readouterr().err
+    assert cli_main(["serve"]) == 0  # by default, as far back as the consumers keep history
+    store = runs[-1]["app"].state.client.store
+    assert store.history_from_state and runs[-1]["port"] == 9001
+    assert "history as the consumers keep" in capsys.readouterr().err
 
     monkeypatch.delenv("CELLPULSE_REDIS_URL")
     assert cli_main(["serve"]) == 2
@@ -528,3 +530,21 @@ def test_cellpulse_serve_over_real_http_and_real_redis(redis_url) -> None:
             os.kill(proc.pid, signal.SIGKILL)
             proc.wait(timeout=5)
         proc.stdout.close()
+
+
+def test_metrics_count_the_messages_applied_to_the_state_once(served) -> None:
+    from featurestore.schema import Rejection
+
+    http, store = served
+    eng = Engine(store, store.config)
+    dup = _fixes()[3]  # veh-1's fourth fix again, from another partition's point of view
+    eng.process([Rejection("malformed", "not JSON", b"{"), dup],
+                spans={"fixes:1": SourceSpan(0, 2, dup.arrival_ms)})
+    m = _samples(http.get("/metrics").text)
+    outcome = "cellpulse_state_messages_total"
+    assert m[(outcome, (("outcome", "received"),))] == 13
+    assert m[(outcome, (("outcome", "accepted"),))] == 11
+    assert m[(outcome, (("outcome", "in_order"),))] == 11
+    assert m[("cellpulse_state_rejected_total", (("reason", "malformed"),))] == 1
+    assert m[("cellpulse_state_rejected_total", (("reason", "duplicate"),))] == 1
+    assert ("cellpulse_state_rejected_total", (("reason", "too_late"),)) not in m
