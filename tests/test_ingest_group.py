@@ -55,9 +55,28 @@ def topic(kafka_broker, day: Path) -> tuple[str, int]:
     return name, produce_day(kafka_broker.bootstrap, name, lines)
 
 
-def _member(bootstrap: str, topic: str, url: str, group: str) -> ConsumerLoop:
+class _Slowed:
+    """A store whose applies take 30 ms longer while ``slow()`` says so (the test keeps the
+    first member busy until the second has joined, however long the join takes)."""
+
+    def __init__(self, store: RedisStore, slow) -> None:
+        self.store = store
+        self.history_ms = store.history_ms
+        self.slow = slow
+
+    def apply(self, delta) -> None:
+        if self.slow():
+            time.sleep(0.03)
+        self.store.apply(delta)
+
+    def __getattr__(self, name):
+        return getattr(self.store, name)
+
+
+def _member(bootstrap: str, topic: str, url: str, group: str, slow=lambda: False
+            ) -> ConsumerLoop:
     source = KafkaSource(bootstrap, topic, group, settings=SETTINGS)
-    return ConsumerLoop(source, RedisStore.from_url(url, history_ms=900_000),
+    return ConsumerLoop(source, _Slowed(RedisStore.from_url(url, history_ms=900_000), slow),
                         KafkaDeadLetters(bootstrap, f"{topic}-dead-letters"),
                         options=LoopOptions(max_poll_records=10, poll_timeout_s=0.1,
                                             idle_exit_s=3.0))
@@ -72,7 +91,9 @@ def test_a_second_member_takes_over_partitions_and_the_state_equals_replay(
     name, total = topic
     group = f"g-{name}"
     store = RedisStore.from_url(redis_url, history_ms=900_000)
-    first = _member(kafka_broker.bootstrap, name, redis_url, group)
+    joined = threading.Event()
+    first = _member(kafka_broker.bootstrap, name, redis_url, group,
+                    slow=lambda: _applied(store) >= total // 5 and not joined.is_set())
     errors: list[BaseException] = []
 
     def run(loop: ConsumerLoop) -> None:
@@ -90,6 +111,9 @@ def test_a_second_member_takes_over_partitions_and_the_state_equals_replay(
     second = _member(kafka_broker.bootstrap, name, redis_url, group)
     t2 = threading.Thread(target=run, args=(second,), daemon=True)
     t2.start()
+    while not second.source.assignment() and time.monotonic() < deadline:
+        time.sleep(0.01)
+    joined.set()
     for t in (t1, t2):
         t.join(timeout=WAIT_S)
         assert not t.is_alive()
