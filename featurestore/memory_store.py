@@ -218,7 +218,8 @@ class MemoryStore:
         return dict(self._positions)
 
     def set_highwaters(self, ends: Mapping[str, int]) -> None:
-        self._highwaters.update(ends)
+        for part, end in ends.items():  # never lowered, as in every store
+            self._highwaters[part] = max(end, self._highwaters.get(part, end))
 
     def highwaters(self) -> dict[str, int]:
         return dict(self._highwaters)

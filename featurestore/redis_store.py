@@ -156,8 +156,9 @@ class RedisStore:
 
     def set_highwaters(self, ends: Mapping[str, int]) -> None:
         """Record each partition's end offset as its consumer last saw it (for ``known_at``)."""
-        if ends:
-            self.client.hset(self.layout.highwaters, mapping={k: int(v) for k, v in ends.items()})
+        if ends:  # never lowered: a member that just lost a partition may report an old end
+            ops = [("M", self.layout.highwaters, k, str(int(v))) for k, v in sorted(ends.items())]
+            self._apply(keys=[self.layout.positions], args=flatten([], ops))
 
     # --- reads -------------------------------------------------------------------------
     def read(self, request: ReadRequest) -> ReadResult:

@@ -181,7 +181,8 @@ class StateStore(Protocol):
         ...
 
     def set_highwaters(self, ends: Mapping[str, int]) -> None:
-        """Record source partitions' end offsets as their consumer last saw them."""
+        """Record source partitions' end offsets as their consumers saw them; a stored end
+        offset is never lowered (a member that just lost a partition may report an old one)."""
         ...
 
     def counters(self) -> dict[str, int]:

@@ -116,6 +116,7 @@ def test_watermark_and_offsets_move_with_the_batch(store: StateStore) -> None:
     assert dict(store.positions()) == {"fixes:0": SourcePosition(11, 5000),
                                        "fixes:1": SourcePosition(3, 4000)}
     store.set_highwaters({"fixes:0": 11, "fixes:1": 9})
+    store.set_highwaters({"fixes:1": 7})  # an older report never lowers it
     assert store.highwaters() == {"fixes:0": 11, "fixes:1": 9}
     got = store.read(ReadRequest(as_of_ms=6000, with_progress=True))
     assert got.highwaters == {"fixes:0": 11, "fixes:1": 9}
