@@ -291,6 +291,9 @@ def _ingest_parser(sub: Any) -> None:
     g.add_argument("--tape", metavar="DIR",
                    help="also record every message received as hourly Parquet files in DIR "
                         "(readable by cellpulse replay)")
+    g.add_argument("--tape-keep-hours", type=float, metavar="HOURS",
+                   help="with --tape: delete tape hours older than HOURS (positions are "
+                        "personal data; default: keep)")
     g.add_argument("--metrics-port", type=int, metavar="PORT",
                    help="serve Prometheus metrics on PORT (path /metrics)")
     g.add_argument("--metrics-host", metavar="ADDR",

@@ -52,6 +52,7 @@ class IngestSettings:
     redis_url: str | None = None
     history: float = 900.0
     tape: str | None = None
+    tape_keep_hours: float | None = None
     from_file: str | None = None
     arrival_from_message: bool = False
     dead_letter_topic: str | None = None
@@ -68,7 +69,7 @@ class IngestSettings:
 
 
 _PARSERS: dict[str, Callable[[str], Any]] = {
-    "history": float, "idle_exit": float, "max_poll_records": int, "session_timeout_ms": int,
+    "history": float, "idle_exit": float, "tape_keep_hours": float, "max_poll_records": int, "session_timeout_ms": int,
     "heartbeat_interval_ms": int, "fetch_max_wait_ms": int, "max_records": int,
     "metrics_port": int, "arrival_from_message": _flag, "start": _choice("earliest", "latest"),
     "log_level": _choice(*LOG_LEVELS),
@@ -105,6 +106,8 @@ def _check(s: IngestSettings) -> None:
     if not s.redis_url:
         raise ValueError(f"say where the state lives: --redis-url redis://HOST:PORT/DB (or "
                          f"{env_name('redis_url')})")
+    if s.tape_keep_hours is not None and not s.tape_keep_hours > 0:
+        raise ValueError(f"--tape-keep-hours {s.tape_keep_hours:g} must be > 0")
     if s.from_file is None and not s.bootstrap:
         raise ValueError(f"say where the fixes come from: --bootstrap HOST:PORT (or "
                          f"{env_name('bootstrap')}), or --from-file PATH|-")
@@ -229,8 +232,10 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
 
         host = re.sub(r"[^A-Za-z0-9_.-]", "-", socket.gethostname())[:80] or "ingest"
         name = f"{host}-{os.getpid()}"  # one writer per process; never clashes
-        tape = TapeWriter(s.tape, name)
-        log.info("tape to %s (writer %s)", s.tape, name)
+        tape = TapeWriter(s.tape, name, keep_hours=s.tape_keep_hours)
+        log.info("tape to %s (writer %s%s)", s.tape, name,
+                 "" if s.tape_keep_hours is None else f", hours older than "
+                 f"{s.tape_keep_hours:g} h deleted")
     options = LoopOptions(max_poll_records=s.max_poll_records, max_records=s.max_records,
                           idle_exit_s=s.idle_exit)
     loop = ConsumerLoop(source, store, dead_letters, config=config, tape=tape, stats=stats,

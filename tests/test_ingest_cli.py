@@ -72,6 +72,20 @@ def test_a_file_with_a_tape_replays_to_the_same_training_set(day: Path, tmp_path
     assert ta.num_rows > 0 and _same_rows(ta, tb)
 
 
+def test_tape_hours_past_the_retention_are_deleted(day: Path, tmp_path: Path) -> None:
+    tape = tmp_path / "tape"
+    base = ["ingest", "--from-file", str(day), "--arrival-from-message", "--redis-url",
+            "memory://", "--tape", str(tape), "--dead-letter-file", str(tmp_path / "d.jsonl")]
+    bad = _run([*base, "--tape-keep-hours", "0"])
+    assert bad.returncode == 2 and "--tape-keep-hours 0 must be > 0" in bad.stderr.decode()
+    # the recorded day (2026-06-01) ended long before now by the wall clock: with a 1-hour
+    # retention every hour it wrote is deleted again once closed
+    got = _run([*base, "--tape-keep-hours", "1"])
+    assert got.returncode == 0, got.stderr.decode()[-2000:]
+    assert orjson.loads(got.stdout)["received"] > 0
+    assert not list(tape.rglob("*.parquet"))
+
+
 def test_settings_from_the_environment_and_flags_win(day: Path, tmp_path: Path) -> None:
     env = {"CELLPULSE_REDIS_URL": "memory://", "CELLPULSE_FROM_FILE": str(day),
            "CELLPULSE_ARRIVAL_FROM_MESSAGE": "1", "CELLPULSE_MAX_RECORDS": "100",
