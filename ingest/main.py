@@ -69,7 +69,8 @@ class IngestSettings:
 
 
 _PARSERS: dict[str, Callable[[str], Any]] = {
-    "history": float, "idle_exit": float, "tape_keep_hours": float, "max_poll_records": int, "session_timeout_ms": int,
+    "history": float, "idle_exit": float, "tape_keep_hours": float, "max_poll_records": int,
+    "session_timeout_ms": int,
     "heartbeat_interval_ms": int, "fetch_max_wait_ms": int, "max_records": int,
     "metrics_port": int, "arrival_from_message": _flag, "start": _choice("earliest", "latest"),
     "log_level": _choice(*LOG_LEVELS),
