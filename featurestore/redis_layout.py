@@ -35,6 +35,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import orjson
 
@@ -286,6 +287,7 @@ def _vehicle_chains(delta: Delta) -> dict[str, list[tuple[int, VehicleState | No
 
 
 SEPARATOR = "\x1f"  # the unit separator: never in JSON text, ids or numbers
+RECORD_SEPARATOR = "\x1e"  # between the commands of a packed read, likewise never in values
 
 
 def flatten(checks: list[str], ops: Iterable[Op]) -> list[str]:
@@ -303,6 +305,9 @@ class ReadPlan:
 
     commands: list[Command]
     parse: Callable[[list], ReadResult]
+
+
+_COLUMN = {ord("f"): 0, ord("p"): 1, ord("d"): 2}  # counter field prefix -> column
 
 
 def _num(v: bytes | str | None) -> int:
@@ -344,24 +349,25 @@ def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int,
     for cell, lo in request.cells.items():
         if hi < lo:
             continue
-        blocks = []
-        for block in range(lo // bb, hi // bb + 1):
-            buckets = range(max(lo, block * bb), min(hi, block * bb + bb - 1) + 1)
-            blocks.append(buckets)
-            cmds.append(("HMGET", layout.cell_block(cell, block),
-                         *[f"{k}{b}" for b in buckets for k in "fpd"]))
+        blocks = range(lo // bb, hi // bb + 1)
+        # whole blocks: only the counters that exist come back (most buckets of a cell are
+        # empty), far less than asking for every field of the range
+        cmds.extend(("HGETALL", layout.cell_block(cell, block)) for block in blocks)
         if hist:
             cmds.append(("ZRANGEBYSCORE", layout.cell_log(cell), after, "+inf"))
 
-        def cells(out: ReadResult, *replies: list, cell: str = cell, blocks: list = blocks,
+        def cells(out: ReadResult, *replies: Any, cell: str = cell, nblocks: int = len(blocks),
                   lo: int = lo) -> None:
             got: dict[int, list[int]] = {}
-            for buckets, vals in zip(blocks, replies, strict=False):
-                for j, b in enumerate(buckets):
-                    f, p, d = vals[3 * j:3 * j + 3]
-                    if f is not None or p is not None or d is not None:
-                        got[b] = [_num(f), _num(p), _num(d)]
-            if len(replies) > len(blocks):
+            for fields in replies[:nblocks]:
+                for name, v in fields.items():
+                    b = int(name[1:])
+                    if lo <= b <= hi:
+                        row = got.get(b)
+                        if row is None:
+                            row = got[b] = [0, 0, 0]
+                        row[_COLUMN[name[0]]] += int(v)
+            if len(replies) > nblocks:
                 for entry in replies[-1]:
                     _, _, b, f, p, d = entry.split(b"|")
                     b = int(b)
