@@ -1,7 +1,7 @@
 """The Python client of the live path: vectors for vehicles, cells and routes as of now or an
 earlier moment, with the catalog version, ``known_at`` and per-family staleness.
 
-One batched store read for any number of keys (one MULTI/EXEC round trip on Redis); asking
+One batched store read for any number of keys (one atomic round trip on Redis); asking
 for ``as_of="latest"`` (the moment the consumers have processed up to) adds one round trip.
 """
 

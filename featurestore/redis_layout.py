@@ -3,7 +3,7 @@ as a list of commands with the parser of their replies.
 
 Pure functions, no Redis import: ``featurestore.redis_store`` sends what these build (writes
 through one Lua script, so a batch and its offsets land in one atomic step; reads through one
-MULTI/EXEC round trip, so a read is a consistent snapshot).
+read script call, so a read is a consistent snapshot in one round trip).
 
 Keys (``P`` is the store's namespace; ``{...}`` is a hash tag, so one vehicle's keys, one cell's
 keys and one route's keys each share a Redis Cluster slot):

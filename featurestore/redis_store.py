@@ -1,7 +1,8 @@
 """The Redis state store: the live path's shared state, behind the same interface as MemoryStore.
 
 Every batch is one Lua script call (atomic: its state changes and the source offsets it
-applied land together or not at all); every read is one MULTI/EXEC round trip. Key layout,
+applied land together or not at all); every read is one script call too (atomic, one round
+trip, its commands and replies packed into one string each). Key layout,
 lifetimes and the encoding of writes and reads live in ``featurestore.redis_layout``.
 Works with redis-py clients for a real server and for fakeredis.
 """
