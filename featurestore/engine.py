@@ -135,7 +135,6 @@ class Engine:
             consumed = i + 1
             if type(item) is Rejection:
                 rejected.append((i, item))
-                stats.rejected[item.reason] += 1
                 continue
             fix = item
             vid = fix.vehicle_id
@@ -152,7 +151,6 @@ class Engine:
                 rej = Rejection(reason, _timing_detail(reason, fix, cfg), raw or _fix_raw(fix),
                                 vid, fix.arrival_ms)
                 rejected.append((i, rej))
-                stats.rejected[reason] += 1
                 continue
             new, eff = advance(state, fix, cfg)
             if history:
@@ -219,6 +217,8 @@ class Engine:
         if not delta.is_empty() or delta.watermark_ms is not None:
             self.store.apply(delta)
         result.consumed = consumed
+        # running totals only once the store took the batch (a refused batch counts nothing)
+        stats.rejected.update(rej.reason for _, rej in rejected)
         stats.received += consumed
         stats.accepted += result.accepted
         stats.in_order += result.in_order

@@ -193,3 +193,15 @@ def test_message_counts_are_applied_with_the_batch(store: StateStore) -> None:
         eng.process([fx[0]], spans={"p:0": SourceSpan(5, 6, fx[2].arrival_ms)})
     assert store.counters() == {"received": 6, "accepted": 3, "in_order": 2, "out_of_order": 1,
                                 "rejected:malformed": 1, "rejected:duplicate": 2}
+
+
+def test_a_refused_batch_leaves_the_engine_totals_alone(store: StateStore) -> None:
+    from featurestore.engine import Engine
+    from featurestore.schema import Rejection
+
+    eng = Engine(store)
+    eng.process([Rejection("malformed", "not JSON", b"{")], spans={"p:0": SourceSpan(0, 1)})
+    with pytest.raises(StaleBatchError):
+        eng.process([Rejection("malformed", "not JSON", b"[")], spans={"p:0": SourceSpan(0, 1)})
+    assert eng.stats.as_dict()["rejected"] == {"malformed": 1}
+    assert eng.stats.received == 1
