@@ -162,7 +162,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_catalog)
 
     p = sub.add_parser(
-        "replay", help="rebuild features from recorded files and write a training set",
+        "replay", help="rebuild features from recorded files into a training set, or "
+                  "push a recorded day into Kafka",
         description="Process recorded fixes in arrival order (ties in file order) through the "
                     "engine and write a training set: label rows joined as of their ts "
                     "(--labels), or one row per completed trip (--trips, the default). "
