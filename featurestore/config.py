@@ -8,7 +8,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, fields
 from typing import Any
 
@@ -124,6 +124,19 @@ _KINDS: dict[str, type] = {
 }
 
 
+def env_value(name: str, parse: Callable[[str], Any], environ: Mapping[str, str]) -> Any:
+    """``CELLPULSE_<NAME>`` parsed, or None when unset or empty; a readable error naming the
+    variable when it does not parse. Every command's settings come through here."""
+    var = ENV_PREFIX + name.upper()
+    raw = environ.get(var)
+    if raw is None or raw == "":
+        return None
+    try:
+        return parse(raw)
+    except ValueError as exc:
+        raise ValueError(f"environment variable {var}={raw!r}: {exc}") from None
+
+
 def config_from_env(
     environ: Mapping[str, str] | None = None, **overrides: Any
 ) -> EngineConfig:
@@ -131,13 +144,8 @@ def config_from_env(
     env = os.environ if environ is None else environ
     values: dict[str, Any] = {}
     for name, kind in _KINDS.items():
-        raw = env.get(ENV_PREFIX + name.upper())
-        if raw is not None and raw != "":
-            try:
-                values[name] = _parse(kind, raw)
-            except ValueError as exc:
-                raise ValueError(
-                    f"environment variable {ENV_PREFIX + name.upper()}={raw!r}: {exc}"
-                ) from exc
+        value = env_value(name, functools.partial(_parse, kind), env)
+        if value is not None:
+            values[name] = value
     values.update({k: v for k, v in overrides.items() if v is not None})
     return EngineConfig(**values)

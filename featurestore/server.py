@@ -38,7 +38,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from featurestore import __version__
 from featurestore.catalog import Catalog, Feature
 from featurestore.client import MAX_KEYS, BadRequest, FeatureClient, VectorResponse
-from featurestore.config import ENV_PREFIX, EngineConfig
+from featurestore.config import ENV_PREFIX, EngineConfig, env_value
 from featurestore.lookup import AsOfError, RouteQuery
 from featurestore.progress import known_at
 from featurestore.schema import MAX_TS_MS, MIN_TS_MS
@@ -645,13 +645,8 @@ def _setting(flag: Any, name: str, parse: Callable[[str], Any], default: Any,
     """A flag's value, else ``CELLPULSE_<NAME>`` from the environment, else the default."""
     if flag is not None:
         return flag
-    raw = environ.get(ENV_PREFIX + name)
-    if raw is None or raw == "":
-        return default
-    try:
-        return parse(raw)
-    except ValueError as exc:
-        raise ValueError(f"environment variable {ENV_PREFIX}{name}={raw!r}: {exc}") from None
+    value = env_value(name, parse, environ)
+    return default if value is None else value
 
 
 def open_store(url: str, config: EngineConfig, history_ms: int | None) -> Any:

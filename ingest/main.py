@@ -16,7 +16,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, fields
 from typing import Any
 
-from featurestore.config import ENV_PREFIX, EngineConfig
+from featurestore.config import ENV_PREFIX, EngineConfig, env_value
 
 log = logging.getLogger("cellpulse.ingest")
 
@@ -91,13 +91,9 @@ def resolve_settings(args: argparse.Namespace, environ: Mapping[str, str] | None
         if given is not None and given is not False:
             values[f.name] = given
             continue
-        raw = env.get(env_name(f.name))
-        if raw is None or raw == "":
-            continue
-        try:
-            values[f.name] = _PARSERS.get(f.name, str)(raw)
-        except ValueError as exc:
-            raise ValueError(f"environment variable {env_name(f.name)}={raw!r}: {exc}") from None
+        value = env_value(f.name, _PARSERS.get(f.name, str), env)
+        if value is not None:
+            values[f.name] = value
     s = IngestSettings(**values)
     _check(s)
     return s
