@@ -40,7 +40,7 @@ from typing import Any
 import orjson
 
 from featurestore.config import EngineConfig
-from featurestore.state import VehicleState
+from featurestore.state import TripState, VehicleState
 from featurestore.store import (
     Delta,
     ReadRequest,
@@ -146,14 +146,42 @@ def presence_member(vid: str, event_ms: int, arrival_ms: int) -> str:
     return f"{vid}|{event_ms}|{arrival_ms}"
 
 
-def _state_json(state: VehicleState | None) -> str:
-    return "-" if state is None else orjson.dumps(state.to_dict()).decode()
+def encode_state(state: VehicleState, *, with_recent: bool = True) -> str:
+    """A vehicle state as a compact JSON array (positional, no field names; ``recent`` as
+    offsets back from ``event_ms``). History logs leave ``recent`` out: it only serves the
+    engine's duplicate check, never a lookup. About a third of the size of the field-named
+    form, and cheaper to build."""
+    t = state.trip
+    ev = state.event_ms
+    return orjson.dumps([
+        state.vehicle_id, ev, state.arrival_ms, state.seen_ms, state.lat, state.lon,
+        state.cell, state.status, state.speed_mps, state.bearings,
+        [ev - r for r in state.recent] if with_recent else (),
+        None if t is None else tuple(t),
+    ]).decode()
+
+
+def decode_state(raw: bytes | str) -> VehicleState:
+    """The inverse of ``encode_state`` (also reads the older field-named JSON object)."""
+    d = orjson.loads(raw)
+    if isinstance(d, dict):
+        return VehicleState.from_dict(d)
+    vid, ev, arr, seen, lat, lon, cell, status, speed, bearings, back, trip = d
+    return VehicleState(
+        vid, ev, arr, seen, lat, lon, cell, status, speed, tuple(bearings),
+        tuple(ev - b for b in back),
+        None if trip is None else TripState(*trip[:9], tuple(trip[9])),
+    )
+
+
+def _state_json(state: VehicleState | None, *, with_recent: bool = True) -> str:
+    return "-" if state is None else encode_state(state, with_recent=with_recent)
 
 
 def _parse_state(raw: bytes | str | None) -> VehicleState | None:
     if raw is None or raw in (b"-", "-"):
         return None
-    return VehicleState.from_dict(orjson.loads(raw))
+    return decode_state(raw)
 
 
 # ------------------------------------------------------------------------------------------
@@ -237,7 +265,8 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
     if hist:
         for i, (arr, vid, before) in enumerate(delta.vehicle_log):
             key = layout.vehicle_log(vid)
-            ops.append(("Z", key, str(arr), f"{arr}|{batch_id}.{i}|{_state_json(before)}"))
+            ops.append(("Z", key, str(arr),
+                        f"{arr}|{batch_id}.{i}|{_state_json(before, with_recent=False)}"))
             ttl[key] = layout.log_ttl_s
         for i, (arr, cell, bucket, f, p, d) in enumerate(delta.cell_log):
             key = layout.cell_log(cell)

@@ -18,6 +18,7 @@ from featurestore.redis_layout import (
     RECORD_SEPARATOR,
     SEPARATOR,
     Layout,
+    decode_state,
     delta_ops,
     flatten,
     parse_positions,
@@ -196,7 +197,7 @@ class RedisStore:
         if not ids:
             return {}
         raws = self.client.mget([self.layout.vehicle(v) for v in ids])
-        return {v: VehicleState.from_dict(_loads(r)) for v, r in zip(ids, raws, strict=True)
+        return {v: decode_state(r) for v, r in zip(ids, raws, strict=True)
                 if r is not None}
 
     def apply(self, delta: Delta) -> None:
@@ -288,9 +289,3 @@ class RedisStore:
 
 def _s(x: bytes | str) -> str:
     return x.decode() if isinstance(x, bytes) else x
-
-
-def _loads(raw: bytes | str) -> dict:
-    import orjson
-
-    return orjson.loads(raw)

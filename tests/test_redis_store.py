@@ -6,6 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import h3
+import orjson
 import pytest
 from redis.crc import key_slot
 
@@ -130,3 +131,23 @@ def test_readers_never_answer_beyond_the_writers_history(redis_url: str) -> None
             reader.vehicle("v1", wm - 60_001)
     with pytest.raises(TypeError, match="writers must give their own history_ms"):
         Engine(auto.store).process(fx)
+
+
+def test_vehicle_state_codec_is_compact_and_exact() -> None:
+    from featurestore.redis_layout import decode_state, encode_state
+    from featurestore.state import TripState, VehicleState
+
+    trip = TripState("veh-7:1780300000000", 1780300000000, 1780300000400, -33.2, -20.6,
+                     "88c19cb94dfffff", "87c19cb94ffffff", 1234.5678901234567, 3,
+                     (237.68982047907218, 0.1 + 0.2))
+    state = VehicleState("veh-7", 1780300045000, 1780300045600, 1780300046000, -33.2244749,
+                         -20.6855664, "88c19c1669fffff", "occupied", 10.45169384436638,
+                         (237.68982047907218, 236.55419012882183), (1780300015000,
+                         1780300030000, 1780300045000), trip)
+    raw = encode_state(state)
+    assert decode_state(raw) == state  # floats round-trip bit for bit (shortest repr)
+    assert decode_state(orjson.dumps(state.to_dict())) == state  # the older field-named form
+    assert '"recent"' not in raw and "[30000,15000,0]" in raw  # offsets back from event_ms
+    assert (len(raw), len(orjson.dumps(state.to_dict()))) == (340, 629)
+    logged = decode_state(encode_state(state, with_recent=False))
+    assert logged.recent == () and logged._replace(recent=state.recent) == state
