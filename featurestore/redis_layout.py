@@ -35,6 +35,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import orjson
@@ -52,13 +53,15 @@ from featurestore.transitions import DAY_MS
 
 PRESENCE_STATUSES = {"vacant": "pv", "occupied": "po"}  # offline vehicles are never counted
 
+ZSET_CHUNK = 1000  # members per coalesced ZADD/ZREM (Lua's unpack has a limit near 8000 values)
 Op = tuple[str, ...]  # an operation of the apply script: opcode and string arguments
 Command = tuple[str | int | float, ...]
 
 
 @dataclass(frozen=True)
 class Layout:
-    """Key names and key lifetimes for one namespace and engine configuration."""
+    """Key names and key lifetimes for one namespace and engine configuration (lifetimes are
+    computed once per layout: they are read for every key of every batch)."""
 
     config: EngineConfig
     namespace: str = "cellpulse"
@@ -66,7 +69,7 @@ class Layout:
     ttl_margin_s: int = 600
 
     # --- keys --------------------------------------------------------------------------
-    @property
+    @cached_property
     def block_buckets(self) -> int:
         return self.config.longest_window_buckets
 
@@ -117,15 +120,15 @@ class Layout:
     def _ttl(self, span_ms: float) -> int:
         return math.ceil((span_ms + self.history_ms) / 1000) + self.ttl_margin_s
 
-    @property
+    @cached_property
     def vehicle_ttl_s(self) -> int:
         return self._ttl(self.config.vehicle_ttl_ms)
 
-    @property
+    @cached_property
     def log_ttl_s(self) -> int:
         return self._ttl(self.config.max_delay_ms)
 
-    @property
+    @cached_property
     def cell_ttl_s(self) -> int:
         # a block is written until its end plus the maximum delay, and read until its end plus
         # the longest window (plus the history kept)
@@ -133,11 +136,11 @@ class Layout:
         block_ms = self.block_buckets * cfg.bucket_ms
         return self._ttl(block_ms + cfg.longest_window_buckets * cfg.bucket_ms + cfg.max_delay_ms)
 
-    @property
+    @cached_property
     def presence_ttl_s(self) -> int:
         return self._ttl(self.config.now_horizon_ms + self.config.max_delay_ms)
 
-    @property
+    @cached_property
     def route_ttl_s(self) -> int:
         return self._ttl((self.config.route_days + 1) * DAY_MS)
 
@@ -190,11 +193,18 @@ def _parse_state(raw: bytes | str | None) -> VehicleState | None:
 def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], list[Op]]:
     """The apply script's arguments for one batch: span checks, then write operations.
 
-    Opcodes: ``I`` key field n (HINCRBY), ``S`` key value ttl (SET EX), ``Z`` key score
-    member (ZADD), ``X`` key score member (ZADD XX), ``R`` key member (ZREM), ``T`` key max
+    Opcodes: ``I`` key field n (HINCRBY), ``S`` key value ttl (SET EX), ``Z`` key n
+    score1 member1 ... (one ZADD of n members), ``X`` likewise with ZADD XX, ``R`` key n
+    member1 ... (one ZREM), ``T`` key max
     (ZREMRANGEBYSCORE -inf max), ``P`` key min (delete hash fields whose number is < min),
     ``E`` key ttl (EXPIRE), ``H`` key field value (HSET), ``M`` key field value (HSET when
     greater than the stored number).
+
+    Sorted-set writes are coalesced per key: one ZADD (then one ZADD XX, one ZREM) per key
+    and batch, whatever the number of fixes, so the script's cost grows with the keys a
+    batch touches more than with its fixes. Within a key, members enter before they are
+    closed (a member entered and superseded in the same batch), and each member is
+    entered once and closed once.
     """
     checks: list[str] = []
     for part, span in sorted(delta.spans.items()):
@@ -204,6 +214,9 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
     cfg = layout.config
     horizon = cfg.now_horizon_ms
     hist = layout.history_ms > 0
+    zadd: dict[str, list[str]] = {}  # key -> score, member, ... (ZADD)
+    zclose: dict[str, list[str]] = {}  # key -> score, member, ... (ZADD XX)
+    zrem: dict[str, list[str]] = {}  # key -> member, ... (ZREM)
 
     for vid, state in delta.vehicles.items():
         ops.append(("S", layout.vehicle(vid), _state_json(state), str(layout.vehicle_ttl_s)))
@@ -225,6 +238,8 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
             ops.append(("P", key, str(route_days_min)))
         ttl[key] = layout.route_ttl_s
 
+    presence_ttl = layout.presence_ttl_s
+
     # Presence: per fix where the history log has the fixes (intervals closed at the arrival
     # that superseded them), else the batch's net move per vehicle.
     def leave(vid: str, cell: str | None, status: str | None, ev: int | None,
@@ -234,17 +249,17 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
         key = layout.presence(cell, status)  # type: ignore[arg-type]
         member = presence_member(vid, ev, arr)
         if hist:
-            ops.append(("X", key, str(min(at, ev + horizon + 1)), member))
+            zclose.setdefault(key, []).extend((str(min(at, ev + horizon + 1)), member))
         else:
-            ops.append(("R", key, member))
-        ttl[key] = layout.presence_ttl_s
+            zrem.setdefault(key, []).append(member)
+        ttl[key] = presence_ttl
 
     def enter(vid: str, cell: str, status: str, ev: int, arr: int) -> None:
         if status not in PRESENCE_STATUSES:
             return
         key = layout.presence(cell, status)
-        ops.append(("Z", key, str(ev + horizon + 1), presence_member(vid, ev, arr)))
-        ttl[key] = layout.presence_ttl_s
+        zadd.setdefault(key, []).extend((str(ev + horizon + 1), presence_member(vid, ev, arr)))
+        ttl[key] = presence_ttl
 
     chains = _vehicle_chains(delta) if hist else {}
     for vid, chain in chains.items():
@@ -263,19 +278,27 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
             enter(vid, mv.cell, mv.status, mv.event_ms, mv.arrival_ms)
 
     if hist:
+        log_ttl = layout.log_ttl_s
         for i, (arr, vid, before) in enumerate(delta.vehicle_log):
             key = layout.vehicle_log(vid)
-            ops.append(("Z", key, str(arr),
-                        f"{arr}|{batch_id}.{i}|{_state_json(before, with_recent=False)}"))
-            ttl[key] = layout.log_ttl_s
+            zadd.setdefault(key, []).extend(
+                (str(arr), f"{arr}|{batch_id}.{i}|{_state_json(before, with_recent=False)}"))
+            ttl[key] = log_ttl
         for i, (arr, cell, bucket, f, p, d) in enumerate(delta.cell_log):
             key = layout.cell_log(cell)
-            ops.append(("Z", key, str(arr), f"{arr}|{batch_id}.{i}|{bucket}|{f}|{p}|{d}"))
-            ttl[key] = layout.log_ttl_s
+            zadd.setdefault(key, []).extend(
+                (str(arr), f"{arr}|{batch_id}.{i}|{bucket}|{f}|{p}|{d}"))
+            ttl[key] = log_ttl
         for i, (arr, o, dd, h, day, dur) in enumerate(delta.route_log):
             key = layout.route_log((o, dd, h))
-            ops.append(("Z", key, str(arr), f"{arr}|{batch_id}.{i}|{day}|{dur}"))
-            ttl[key] = layout.log_ttl_s
+            zadd.setdefault(key, []).extend((str(arr), f"{arr}|{batch_id}.{i}|{day}|{dur}"))
+            ttl[key] = log_ttl
+
+    for code, groups, width in (("Z", zadd, 2), ("X", zclose, 2), ("R", zrem, 1)):
+        for key, args in groups.items():
+            for lo in range(0, len(args), ZSET_CHUNK * width):
+                part = args[lo:lo + ZSET_CHUNK * width]
+                ops.append((code, key, str(len(part) // width), *part))
 
     if delta.watermark_ms is not None:
         # Forget what no answerable read needs: history before (watermark - history), and

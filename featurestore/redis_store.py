@@ -40,6 +40,7 @@ from featurestore.store import (
 # far cheaper for the client than sending each field as an argument). Checks come first and
 # the operations cannot fail on well-formed keys, so a batch is never half applied.
 APPLY_LUA = """
+local unpack = table.unpack or unpack
 local pos = KEYS[1]
 local n = tonumber(ARGV[1])
 local i = 2
@@ -69,15 +70,18 @@ while i <= argc do
   if op == 'I' then
     redis.call('HINCRBY', ARG[i + 1], ARG[i + 2], ARG[i + 3]); i = i + 4
   elseif op == 'Z' then
-    redis.call('ZADD', ARG[i + 1], ARG[i + 2], ARG[i + 3]); i = i + 4
+    local m = 2 * tonumber(ARG[i + 2])
+    redis.call('ZADD', ARG[i + 1], unpack(ARG, i + 3, i + 2 + m)); i = i + 3 + m
   elseif op == 'X' then
-    redis.call('ZADD', ARG[i + 1], 'XX', ARG[i + 2], ARG[i + 3]); i = i + 4
+    local m = 2 * tonumber(ARG[i + 2])
+    redis.call('ZADD', ARG[i + 1], 'XX', unpack(ARG, i + 3, i + 2 + m)); i = i + 3 + m
+  elseif op == 'R' then
+    local m = tonumber(ARG[i + 2])
+    redis.call('ZREM', ARG[i + 1], unpack(ARG, i + 3, i + 2 + m)); i = i + 3 + m
   elseif op == 'S' then
     redis.call('SET', ARG[i + 1], ARG[i + 2], 'EX', ARG[i + 3]); i = i + 4
   elseif op == 'E' then
     redis.call('EXPIRE', ARG[i + 1], ARG[i + 2]); i = i + 3
-  elseif op == 'R' then
-    redis.call('ZREM', ARG[i + 1], ARG[i + 2]); i = i + 3
   elseif op == 'T' then
     redis.call('ZREMRANGEBYSCORE', ARG[i + 1], '-inf', ARG[i + 2]); i = i + 3
   elseif op == 'H' then

@@ -151,3 +151,27 @@ def test_vehicle_state_codec_is_compact_and_exact() -> None:
     assert (len(raw), len(orjson.dumps(state.to_dict()))) == (340, 629)
     logged = decode_state(encode_state(state, with_recent=False))
     assert logged.recent == () and logged._replace(recent=state.recent) == state
+
+
+def test_one_batch_writes_thousands_of_members_of_one_key(redis_url: str) -> None:
+    """Sorted-set writes are coalesced per key into chunks of ZSET_CHUNK members: a batch of
+    2,500 fixes of one vehicle (2,500 log entries, presence intervals in one cell) lands
+    whole, and reads as of moments inside it equal the in-memory store's."""
+    from featurestore.memory_store import MemoryStore
+    from featurestore.redis_layout import ZSET_CHUNK
+
+    t0 = 1_780_300_000_000
+    batch = [Fix(vehicle_id="veh-1", event_ms=t0 + 2000 * i, lat=-33.2 + 1e-4 * i, lon=-20.6,
+                 status="vacant" if (i // 100) % 2 else "occupied",
+                 arrival_ms=t0 + 2000 * i + 500) for i in range(2500)]
+    redis_store = RedisStore.from_url(redis_url, history_ms=10**8, namespace="chunk")
+    mem = MemoryStore(history_ms=10**8)
+    Engine(redis_store).process(batch)
+    Engine(mem).process(batch)
+    assert 2500 > 2 * ZSET_CHUNK
+    assert redis_store.client.zcard("chunk:vl:{veh-1}") == 2500
+    for k in (0, 999, 1000, 1001, 2001, 2499):
+        at = batch[k].arrival_ms
+        assert Lookup(redis_store).vehicle("veh-1", at) == Lookup(mem).vehicle("veh-1", at)
+        cell = redis_store.load_vehicles(["veh-1"])["veh-1"].cell
+        assert Lookup(redis_store).cell(cell, at) == Lookup(mem).cell(cell, at)
