@@ -248,6 +248,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_serve)
 
     _ingest_parser(sub)
+    from bench.runner import add_parser as _bench_parser  # the benchmarks' runner, bench/
+
+    _bench_parser(sub)
     return parser
 
 
