@@ -138,7 +138,11 @@ def machine_description() -> dict[str, Any]:
         "python": platform.python_version(),
     }
     try:
-        desc["redis_server"] = _first_line([redis_server_binary(), "--version"])
+        line = _first_line([redis_server_binary(), "--version"])
+        # "Redis server v=7.0.15 sha=... malloc=jemalloc-5.3.0 ..." -> "redis-server 7.0.15"
+        fields = dict(p.split("=", 1) for p in line.split() if "=" in p)
+        desc["redis_server"] = (f"redis-server {fields['v']} ({fields.get('malloc', '?')})"
+                                if "v" in fields else line)
     except ServerError as exc:
         desc["redis_server"] = f"missing: {exc}"
     try:
@@ -282,7 +286,7 @@ def fmt_number(x: float | None) -> str:
         return f"{x:,.0f}"
     if ax >= 1:
         return f"{x:.2f}"
-    return f"{x:.3g}"
+    return f"{x:#.3g}"
 
 
 def fmt_ratio(r: float | None) -> str:
@@ -340,7 +344,7 @@ def text_table(report: BenchReport) -> str:
                          for i, (c, w) in enumerate(zip(cells, widths, strict=True))).rstrip()
 
     out = [line(HEADER), line(["-" * w for w in widths])]
-    out += [line(r) for r in body]
+    out += [line(r) for r in body] or ["(no figures)"]
     out.append("")
     for r in report.results:
         out.append(f"{r.name:8s} {r.status}{': ' + r.detail if r.detail else ''}"
