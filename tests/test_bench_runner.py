@@ -84,7 +84,8 @@ def report() -> runner.BenchReport:
                             "bench.decode has no run(opts, env)"),
     ]
     machine = {"cpu": "Test CPU", "cores": 2, "ram_gib": 4.0, "os": "Linux", "python": "3.11.7",
-               "redis_server": "redis-server 7.0.15", "tansu": "0.6.0", "libraries": {"redis": "8.1.0"}}
+               "redis_server": "redis-server 7.0.15", "tansu": "0.6.0",
+               "libraries": {"redis": "8.1.0"}}
     return runner.BenchReport(machine, {"quick": False}, results, "2026-06-01 00:00:00 UTC",
                               5.0)
 
@@ -92,8 +93,8 @@ def report() -> runner.BenchReport:
 def test_markdown_table_escapes_pipes_and_marks_missed_targets():
     md = runner.markdown(report()).splitlines()
     assert md[0] == ("Measured 2026-06-01 00:00:00 UTC with `cellpulse bench` on: Test CPU, "
-                     "2 cores, 4.0 GiB RAM, Linux; Python 3.11.7; redis-server 7.0.15; Tansu 0.6.0; "
-                     "redis 8.1.0.")
+                     "2 cores, 4.0 GiB RAM, Linux; Python 3.11.7; redis-server 7.0.15; "
+                     "Tansu 0.6.0; redis 8.1.0.")
     assert md[2] == "| bench | what | figure | floor | ratio | target | met |"
     assert md[3] == "|---|---|---|---|---|---|---|"
     assert md[6] == ("| lookup | one vehicle \\| client | 0.800 ms | 0.200 ms (HMGET) | 0.25× "
