@@ -8,7 +8,7 @@ import sys
 from collections.abc import Sequence
 from typing import Any
 
-from featurestore.config import ENV_PREFIX, EngineConfig, config_from_env
+from featurestore.config import ENV_PREFIX, EngineConfig, config_from_env, env_value
 
 EPILOG = (f"Every engine option can also be set with an environment variable {ENV_PREFIX}<NAME>, "
           f"e.g. {ENV_PREFIX}CELL_RESOLUTION=9; flags win over the environment.")
@@ -85,6 +85,12 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def _kafka_client_name(text: str) -> str:
+    if text not in ("kafka-python", "confluent"):
+        raise ValueError("expected kafka-python or confluent")
+    return text
+
+
 def _replay_to_kafka(args: argparse.Namespace) -> int:
     """``replay --to-kafka``: push the inputs into a topic in arrival order."""
     import os
@@ -103,9 +109,12 @@ def _replay_to_kafka(args: argparse.Namespace) -> int:
     created = None
     if args.create_topic is not None:
         created, _parts = ensure_topic(args.to_kafka, topic, args.create_topic)
+    client = args.kafka_client or env_value(
+        "kafka_client", _kafka_client_name, os.environ) or "kafka-python"
     summary = push_to_kafka(args.inputs, args.to_kafka, topic, speed=speed,
                             assume_delay_s=args.assume_delay, sort=args.sort,
-                            progress=not args.no_progress and sys.stderr.isatty())
+                            progress=not args.no_progress and sys.stderr.isatty(),
+                            kafka_client=client)
     out = summary.as_dict()
     if created is not None:
         out["topic_created"] = created
@@ -201,6 +210,10 @@ def build_parser() -> argparse.ArgumentParser:
                         "as the broker takes them (default max)")
     k.add_argument("--create-topic", type=int, metavar="PARTITIONS",
                    help="create the topic with this many partitions if it does not exist")
+    k.add_argument("--kafka-client", choices=("kafka-python", "confluent"),
+                   help=f"producer library: kafka-python (default) or confluent (librdkafka, "
+                        f"far faster; pip install \"cellpulse[fast]\"); also "
+                        f"{ENV_PREFIX}KAFKA_CLIENT")
     _engine_flags(p)
     p.set_defaults(func=cmd_replay)
 
@@ -269,6 +282,9 @@ def _ingest_parser(sub: Any) -> None:
                "win over the environment.")
     g = p.add_argument_group("source")
     g.add_argument("--bootstrap", metavar="HOST:PORT[,HOST:PORT]", help="Kafka bootstrap servers")
+    g.add_argument("--kafka-client", choices=("kafka-python", "confluent"),
+                   help="Kafka client library: kafka-python (default) or confluent "
+                        "(librdkafka, faster; pip install \"cellpulse[fast]\")")
     g.add_argument("--topic", metavar="NAME", help="topic of the fixes (default fixes)")
     g.add_argument("--group", metavar="NAME", help="consumer group (default cellpulse)")
     g.add_argument("--partitions", metavar="N,N,...",

@@ -9,6 +9,8 @@ message exactly once (a repeat has the same reason and raw bytes).
   bytes as received, key = the original key, headers ``reason``, ``detail``,
   ``source_partition`` (e.g. ``fixes:3``), ``source_offset``, ``source_timestamp`` (epoch ms
   of the source record, empty when it had none), all UTF-8 text.
+- Kafka through librdkafka (``ConfluentDeadLetters``, ``--kafka-client confluent``): the same
+  records and headers.
 - File (``FileDeadLetters``): JSON Lines with the same fields plus ``key``; ``raw`` is the
   text of the raw bytes when they are valid UTF-8, else null with ``raw_base64`` holding them.
 """
@@ -155,6 +157,137 @@ class KafkaDeadLetters:
             self._producer.close(timeout=5)
         except Exception as exc:  # noqa: BLE001 - closing anyway
             log.debug("closing the dead-letter producer: %s", exc)
+
+
+class ConfluentDeadLetters:
+    """Dead letters to a Kafka topic through librdkafka (confluent-kafka): the same records and
+    headers as ``KafkaDeadLetters``, acks from all in-sync replicas, flushed per batch (a batch
+    whose letters are not all acknowledged raises and is not applied)."""
+
+    def __init__(self, bootstrap: str, topic: str, *, timeout_s: float = 10.0,
+                 max_request_size: int = 8 * 1024 * 1024, producer: Any = None) -> None:
+        self.topic = topic
+        self.timeout_s = timeout_s
+        self.sent = 0
+        if producer is None:
+            from ingest.confluent_source import ConfluentWatch, load_confluent
+
+            ck = load_confluent()
+            watch = ConfluentWatch(bootstrap, 10.0, what="dead-letter broker")
+            producer = ck.Producer({
+                "bootstrap.servers": bootstrap, "acks": "all", "linger.ms": 5,
+                "message.max.bytes": max_request_size,
+                "message.timeout.ms": int(timeout_s * 1000),
+                "client.id": f"cellpulse-dead-letters-{os.getpid()}",
+                "log.connection.close": False, **watch.config(),
+            })
+        self._producer = producer
+        self._check_topic(bootstrap)
+
+    def _check_topic(self, bootstrap: str) -> None:
+        try:
+            md = self._producer.list_topics(timeout=self.timeout_s)
+            info = md.topics.get(self.topic)
+            found = info is not None and getattr(info, "error", None) is None \
+                and bool(info.partitions)
+            why = "no such topic"
+        except Exception as exc:  # noqa: BLE001 - KafkaException: no broker answered
+            found, why = False, _confluent_text(exc)
+        if not found:
+            self._producer.flush(0)
+            raise DeadLetterError(
+                f"dead-letter topic {self.topic!r} not found on {bootstrap} ({why}): create it, "
+                f"or name another with --dead-letter-topic")
+
+    def _produce(self, key: bytes | None, value: bytes, headers: list[tuple[str, bytes]],
+                 on_delivery: Any) -> None:
+        while True:
+            try:
+                self._producer.produce(self.topic, value=value, key=key, headers=headers,
+                                       on_delivery=on_delivery)
+                return
+            except BufferError:  # the local queue is full: let deliveries drain it
+                self._producer.poll(0.05)
+
+    def send(self, letters: Sequence[DeadLetter]) -> None:
+        if not letters:
+            return
+        errors: dict[int, Any] = {}
+        acked: set[int] = set()
+        too_large: list[tuple[DeadLetter, str]] = []
+
+        def delivered(i: int) -> Any:
+            def done(err: Any, msg: Any) -> None:
+                if err is None:
+                    acked.add(i)
+                else:
+                    errors[i] = err
+            return done
+
+        for i, d in enumerate(letters):
+            try:
+                self._produce(d.record.key, d.record.value, d.headers(), delivered(i))
+            except Exception as exc:  # noqa: BLE001 - KafkaException from produce()
+                if _confluent_code(exc) == "MSG_SIZE_TOO_LARGE":  # over message.max.bytes
+                    acked.add(i)
+                    too_large.append((d, _confluent_text(exc)))
+                    continue
+                raise DeadLetterError(f"dead-letter topic {self.topic!r}: "
+                                      f"{_confluent_text(exc)}") from exc
+        left = self._producer.flush(self.timeout_s)
+        if left or len(acked) + len(errors) < len(letters):
+            raise DeadLetterError(f"dead-letter topic {self.topic!r}: not acknowledged within "
+                                  f"{self.timeout_s} s")
+        for i, err in sorted(errors.items()):
+            name = _confluent_code(err)
+            if name in ("MSG_SIZE_TOO_LARGE", "MESSAGE_TOO_LARGE"):
+                too_large.append((letters[i], _confluent_text(err)))
+            else:
+                raise DeadLetterError(f"dead-letter topic {self.topic!r}: "
+                                      f"{_confluent_text(err)}")
+        for d, why in too_large:
+            self._send_truncated(d, why)
+        self.sent += len(letters)
+
+    def _send_truncated(self, d: DeadLetter, why: str) -> None:
+        """As ``KafkaDeadLetters._send_truncated``: keep the first 64 KiB, header
+        ``truncated_from`` = the full size."""
+        size = len(d.record.value)
+        log.error("dead letter %s@%d (%d bytes) too large for %r (%s): keeping its first "
+                  "64 KiB", d.record.partition, d.record.offset, size, self.topic, why)
+        result: list[Any] = []
+        self._produce(d.record.key, d.record.value[:65536],
+                      [*d.headers(), ("truncated_from", str(size).encode())],
+                      lambda err, msg: result.append(err))
+        if self._producer.flush(self.timeout_s) or not result:
+            raise DeadLetterError(f"dead-letter topic {self.topic!r}: not acknowledged within "
+                                  f"{self.timeout_s} s")
+        if result[0] is not None:
+            raise DeadLetterError(f"dead-letter topic {self.topic!r}: "
+                                  f"{_confluent_text(result[0])}")
+
+    def close(self) -> None:
+        try:
+            self._producer.flush(self.timeout_s)
+        except Exception as exc:  # noqa: BLE001 - closing anyway
+            log.debug("closing the dead-letter producer: %s", exc)
+
+
+def _confluent_code(err: Any) -> str:
+    """The code name of a confluent KafkaError or KafkaException (e.g. MSG_SIZE_TOO_LARGE)."""
+    err = err.args[0] if isinstance(err, BaseException) and err.args else err
+    try:
+        return str(err.name())
+    except Exception:  # noqa: BLE001 - not a KafkaError
+        return ""
+
+
+def _confluent_text(err: Any) -> str:
+    inner = err.args[0] if isinstance(err, BaseException) and err.args else err
+    try:
+        return str(inner.str())
+    except Exception:  # noqa: BLE001 - not a KafkaError
+        return str(err) or type(err).__name__
 
 
 def _text(exc: BaseException) -> str:

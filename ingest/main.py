@@ -45,6 +45,7 @@ class IngestSettings:
     """Every ``cellpulse ingest`` option (flag dest = field name; env CELLPULSE_<NAME>)."""
 
     bootstrap: str | None = None
+    kafka_client: str = "kafka-python"
     topic: str = "fixes"
     group: str = "cellpulse"
     partitions: str | None = None
@@ -73,6 +74,7 @@ _PARSERS: dict[str, Callable[[str], Any]] = {
     "session_timeout_ms": int,
     "heartbeat_interval_ms": int, "fetch_max_wait_ms": int, "max_records": int,
     "metrics_port": int, "arrival_from_message": _flag, "start": _choice("earliest", "latest"),
+    "kafka_client": _choice("kafka-python", "confluent"),
     "log_level": _choice(*LOG_LEVELS),
 }
 
@@ -108,6 +110,8 @@ def _check(s: IngestSettings) -> None:
     if s.from_file is None and not s.bootstrap:
         raise ValueError(f"say where the fixes come from: --bootstrap HOST:PORT (or "
                          f"{env_name('bootstrap')}), or --from-file PATH|-")
+    if s.kafka_client not in ("kafka-python", "confluent"):
+        raise ValueError(f"--kafka-client {s.kafka_client!r}: expected kafka-python or confluent")
     if s.from_file is not None and s.partitions is not None:
         raise ValueError("--partitions is for a Kafka topic, not with --from-file")
     for name in ("max_poll_records", "session_timeout_ms", "heartbeat_interval_ms"):
@@ -164,7 +168,12 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
     """The ``cellpulse ingest`` command; prints the final counters as JSON."""
     from featurestore.redis_store import RedisStore
     from ingest.consumer import ConsumerLoop, LoopOptions
-    from ingest.dead_letters import DeadLetterError, FileDeadLetters, KafkaDeadLetters
+    from ingest.dead_letters import (
+        ConfluentDeadLetters,
+        DeadLetterError,
+        FileDeadLetters,
+        KafkaDeadLetters,
+    )
     from ingest.sources import (
         FileSource,
         KafkaSettings,
@@ -205,9 +214,19 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
                                  max_poll_records=s.max_poll_records,
                                  fetch_max_wait_ms=s.fetch_max_wait_ms)
         parts = parse_partitions(s.partitions) if s.partitions is not None else None
+        source_class: Any = KafkaSource
+        sink_class: Any = KafkaDeadLetters
+        if s.kafka_client == "confluent":
+            from ingest.confluent_source import ConfluentSource, load_confluent
+
+            try:
+                load_confluent()
+            except SourceError as exc:
+                raise ValueError(f"--kafka-client confluent: {exc}") from None
+            source_class, sink_class = ConfluentSource, ConfluentDeadLetters
         try:
-            source = KafkaSource(s.bootstrap, s.topic, s.group, partitions=parts, start=s.start,
-                                 settings=settings, should_stop=stop)
+            source = source_class(s.bootstrap, s.topic, s.group, partitions=parts,
+                                  start=s.start, settings=settings, should_stop=stop)
         except SourceUnavailable as exc:
             log.info("stopped before starting: %s", exc)
             return 0
@@ -215,14 +234,14 @@ def run_ingest(args: argparse.Namespace, config: EngineConfig) -> int:
             raise ValueError(str(exc)) from None
         dl_topic = s.dead_letter_topic or f"{s.topic}-dead-letters"
         try:
-            dead_letters = KafkaDeadLetters(s.bootstrap, dl_topic)
+            dead_letters = sink_class(s.bootstrap, dl_topic)
         except DeadLetterError as exc:
             source.close()
             raise ValueError(str(exc)) from None
         except BaseException:
             source.close()
             raise
-        log.info("dead letters to topic %s", dl_topic)
+        log.info("dead letters to topic %s (Kafka client %s)", dl_topic, s.kafka_client)
     tape = None
     if s.tape:
         from ingest.tape import TapeWriter

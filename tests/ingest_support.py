@@ -7,12 +7,21 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 
 import orjson
+import pytest
 
 from featurestore.config import EngineConfig
 from featurestore.lookup import Lookup, RouteQuery
 from featurestore.memory_store import MemoryStore
+from ingest.confluent_source import INSTALL_HINT, confluent_available
 from replay.readers import iter_file
 from replay.session import ReplaySession
+
+# The Kafka clients the live-path tests run with (``--kafka-client``); confluent-kafka is optional.
+KAFKA_CLIENTS = [
+    pytest.param("kafka-python", id="kafka-python"),
+    pytest.param("confluent", id="confluent", marks=pytest.mark.skipif(
+        not confluent_available(), reason=f"confluent-kafka not installed: {INSTALL_HINT}")),
+]
 
 
 def key_and_arrival(raw: bytes) -> tuple[bytes | None, int | None]:

@@ -1,6 +1,7 @@
 """Bad input through the real broker into real Redis: every broken message lands in the
 dead-letter topic with its exact reason, its raw bytes byte for byte and its source
-coordinates; the consumer keeps going; the counts add up exactly."""
+coordinates; the consumer keeps going; the counts add up exactly. With each Kafka client
+(kafka-python, and confluent-kafka when installed)."""
 
 from __future__ import annotations
 
@@ -9,12 +10,13 @@ import uuid
 import h3
 import orjson
 import pytest
+from ingest_support import KAFKA_CLIENTS
 from kafka import KafkaConsumer, KafkaProducer, TopicPartition
 
 from featurestore.lookup import Lookup
 from featurestore.redis_store import RedisStore
 from ingest.consumer import ConsumerLoop, LoopOptions
-from ingest.dead_letters import KafkaDeadLetters
+from ingest.dead_letters import ConfluentDeadLetters, KafkaDeadLetters
 from ingest.sources import KafkaSettings, KafkaSource
 
 T0 = 1_780_000_000_000  # 2026-05-28T20:26:40Z, epoch ms
@@ -109,14 +111,21 @@ def _read_all(bootstrap: str, topic: str, expected: int) -> list:
     return out
 
 
+@pytest.mark.parametrize("client", KAFKA_CLIENTS)
 def test_broken_messages_land_in_dead_letters_and_the_consumer_goes_on(
-        kafka_broker, redis_url: str, topic: str) -> None:
+        kafka_broker, redis_url: str, topic: str, client: str) -> None:
     msgs = messages()
     where = _produce(kafka_broker.bootstrap, topic, msgs)
     store = RedisStore.from_url(redis_url, history_ms=900_000)
-    source = KafkaSource(kafka_broker.bootstrap, topic, "bad-input", partitions=[0, 1],
-                         settings=KafkaSettings(max_poll_records=4, fetch_max_wait_ms=100))
-    sink = KafkaDeadLetters(kafka_broker.bootstrap, f"{topic}-dead-letters")
+    if client == "confluent":
+        from ingest.confluent_source import ConfluentSource
+
+        source_class, sink_class = ConfluentSource, ConfluentDeadLetters
+    else:
+        source_class, sink_class = KafkaSource, KafkaDeadLetters
+    source = source_class(kafka_broker.bootstrap, topic, "bad-input", partitions=[0, 1],
+                          settings=KafkaSettings(max_poll_records=4, fetch_max_wait_ms=100))
+    sink = sink_class(kafka_broker.bootstrap, f"{topic}-dead-letters")
     loop = ConsumerLoop(source, store, sink,
                         options=LoopOptions(max_poll_records=4, poll_timeout_s=0.2,
                                             idle_exit_s=1.5))

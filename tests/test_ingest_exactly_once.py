@@ -2,7 +2,7 @@
 ingest`` is SIGKILLed mid-stream and restarted (in a consumer group), or redis-server is
 SIGKILLed and restarted under it; the final state equals a replay of the same messages (every
 vehicle, cell and route vector; the total of the cell fix counters), and every rejected message
-is in the dead-letter topic (repeats allowed, none missing)."""
+is in the dead-letter topic (repeats allowed, none missing). With each Kafka client."""
 
 from __future__ import annotations
 
@@ -18,6 +18,7 @@ from pathlib import Path
 
 import pytest
 from ingest_support import (
+    KAFKA_CLIENTS,
     compare_with_replay,
     produce_day,
     redis_cell_fixes,
@@ -82,8 +83,15 @@ def topic(kafka_broker, day: Path) -> tuple[str, int]:
     return name, produce_day(kafka_broker.bootstrap, name, lines)
 
 
-def _ingest(bootstrap: str, topic: str, url: str, log: Path, *extra: str) -> subprocess.Popen:
+@pytest.fixture(params=KAFKA_CLIENTS)
+def kafka_client(request) -> str:
+    return request.param
+
+
+def _ingest(bootstrap: str, topic: str, url: str, log: Path, *extra: str,
+            client: str = "kafka-python") -> subprocess.Popen:
     argv = [sys.executable, "-m", "featurestore.cli", "ingest", "--bootstrap", bootstrap,
+            "--kafka-client", client,
             "--topic", topic, "--redis-url", url, "--history", str(HISTORY_S),
             "--max-poll-records", "10", "--fetch-max-wait-ms", "100", *extra]
     with open(log, "ab") as fh:
@@ -168,7 +176,7 @@ def _check_end_state(url: str, bootstrap: str, topic: str, total: int, replay) -
 
 
 def test_consumer_killed_mid_stream_and_restarted_ends_equal_to_replay(
-        kafka_broker, redis_aof, topic, replay, tmp_path: Path) -> None:
+        kafka_broker, redis_aof, topic, replay, tmp_path: Path, kafka_client: str) -> None:
     name, total = topic
     log = tmp_path / "ingest.log"
     client = redis_aof.client()
@@ -177,7 +185,8 @@ def test_consumer_killed_mid_stream_and_restarted_ends_equal_to_replay(
     kills = []
     try:
         for share in (0.20, 0.45, 0.70):
-            proc = _ingest(kafka_broker.bootstrap, name, redis_aof.url, log, *group)
+            proc = _ingest(kafka_broker.bootstrap, name, redis_aof.url, log, *group,
+                           client=kafka_client)
             try:
                 start = max(_applied(client), 0)
                 kills.append(_wait_applied(proc, client, max(int(share * total), start + 1)))
@@ -185,17 +194,18 @@ def test_consumer_killed_mid_stream_and_restarted_ends_equal_to_replay(
                 _kill(proc)
         assert all(0 < k < total for k in kills), kills  # every kill landed mid-stream
         proc = _ingest(kafka_broker.bootstrap, name, redis_aof.url, log, *group,
-                       "--idle-exit", "1.5")
+                       "--idle-exit", "1.5", client=kafka_client)
         _finish(proc, log)
         _check_end_state(redis_aof.url, kafka_broker.bootstrap, name, total, replay)
     finally:
         client.close()
     text = log.read_text()
     assert text.count("(stored with the state)") >= 3  # every restart resumed from Redis
+    assert ("with librdkafka" in text) == (kafka_client == "confluent")
 
 
 def test_redis_killed_and_restarted_under_the_consumer_ends_equal_to_replay(
-        kafka_broker, redis_aof, topic, replay, tmp_path: Path) -> None:
+        kafka_broker, redis_aof, topic, replay, tmp_path: Path, kafka_client: str) -> None:
     """Two outages: a plain SIGKILL and restart (the AOF keeps every write), then a SIGKILL
     after which Redis comes back from an older copy of its AOF, as after losing its latest
     writes: the consumer must read the lost batches again from the offsets it finds."""
@@ -205,7 +215,7 @@ def test_redis_killed_and_restarted_under_the_consumer_ends_equal_to_replay(
     snapshot = tmp_path / "aof-snapshot"
     proc = _ingest(kafka_broker.bootstrap, name, redis_aof.url, log,
                    "--partitions", ",".join(str(p) for p in range(PARTITIONS)),
-                   "--idle-exit", "3")
+                   "--idle-exit", "3", client=kafka_client)
     client = redis_aof.client(socket_timeout=2)
     try:
         _wait_applied(proc, client, int(0.30 * total))

@@ -1,7 +1,8 @@
 """Parity through real servers: a recorded day with late, duplicate, out-of-order and broken
 messages, pushed through a real broker into real Redis by two consumers in one group over four
 partitions, served over HTTP and through the Python client, equals `cellpulse replay` of the
-same file as of every checkpoint (integers exactly, floats within 1e-9 relative)."""
+same file as of every checkpoint (integers exactly, floats within 1e-9 relative). With each
+Kafka client (``--kafka-client``; the confluent run also pushes with the confluent producer)."""
 
 from __future__ import annotations
 
@@ -20,6 +21,7 @@ import httpx
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from ingest_support import KAFKA_CLIENTS
 from servers import free_port
 
 from featurestore.catalog import Catalog
@@ -175,11 +177,13 @@ def _wait_known(client: FeatureClient, t: int, procs: list[subprocess.Popen]) ->
     raise AssertionError(f"known_at did not reach {t} in {WAIT_S} s (is {client.known_at_ms()})")
 
 
-@pytest.fixture
-def live(kafka_broker, redis_url: str, tmp_path: Path) -> Iterator[dict]:
+@pytest.fixture(params=KAFKA_CLIENTS)
+def live(request, kafka_broker, redis_url: str, tmp_path: Path) -> Iterator[dict]:
     """Two consumers in one group over a 4-partition topic, and the HTTP server."""
-    kafka_broker.create_topic(TOPIC, 4)
-    kafka_broker.create_topic(f"{TOPIC}-dead-letters", 1)
+    client = request.param
+    topic = f"{TOPIC}-{client}"
+    kafka_broker.create_topic(topic, 4)
+    kafka_broker.create_topic(f"{topic}-dead-letters", 1)
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     procs: list[subprocess.Popen] = []
     logs = [tmp_path / f"ingest-{i}.log" for i in range(2)]
@@ -187,8 +191,9 @@ def live(kafka_broker, redis_url: str, tmp_path: Path) -> Iterator[dict]:
     try:
         for log in logs:
             procs.append(subprocess.Popen(
-                _cli("ingest", "--bootstrap", kafka_broker.bootstrap, "--topic", TOPIC,
-                     "--group", "parity", "--redis-url", redis_url, "--history", str(HISTORY_S),
+                _cli("ingest", "--bootstrap", kafka_broker.bootstrap, "--topic", topic,
+                     "--kafka-client", client, "--group", f"parity-{client}",
+                     "--redis-url", redis_url, "--history", str(HISTORY_S),
                      "--session-timeout-ms", "3000", "--heartbeat-interval-ms", "1000",
                      "--max-poll-records", "400"),
                 stdout=log.open("wb"), stderr=subprocess.STDOUT, env=env))
@@ -206,7 +211,8 @@ def live(kafka_broker, redis_url: str, tmp_path: Path) -> Iterator[dict]:
                 pass
             assert time.monotonic() < deadline, serve_log.read_text()[-2000:]
             time.sleep(0.2)
-        yield {"procs": procs, "base": base, "logs": logs, "bootstrap": kafka_broker.bootstrap}
+        yield {"procs": procs, "base": base, "logs": logs, "bootstrap": kafka_broker.bootstrap,
+               "client": client, "topic": topic}
     finally:
         for p in procs:
             _stop(p)
@@ -282,14 +288,17 @@ def test_live_path_equals_replay(day: dict, live: dict, redis_url: str, tmp_path
                      rng.randrange(first, mid), *(rng.randrange(mid, last) for _ in range(3))})
     expected = _replay_at(day, stage1 + stage2, tmp_path)
 
+    topic = live["topic"]
     held = _wait_assigned(live)
-    assert all(held) and set().union(*held) == {f"{TOPIC}:{p}" for p in range(4)}, held
-    pushed = push_to_kafka([day["parts"][0]], live["bootstrap"], TOPIC)
+    assert all(held) and set().union(*held) == {f"{topic}:{p}" for p in range(4)}, held
+    pushed = push_to_kafka([day["parts"][0]], live["bootstrap"], topic,
+                           kafka_client=live["client"])
     assert pushed.delivered == pushed.sent > 0
     _wait_known(client, mid, live["procs"])
     compared = _check(day, live, client, stage1, expected)
 
-    pushed = push_to_kafka([day["parts"][1]], live["bootstrap"], TOPIC)
+    pushed = push_to_kafka([day["parts"][1]], live["bootstrap"], topic,
+                           kafka_client=live["client"])
     assert pushed.delivered == pushed.sent > 0
     _wait_known(client, last, live["procs"])
     compared += _check(day, live, client, stage2, expected)
@@ -300,8 +309,11 @@ def test_live_path_equals_replay(day: dict, live: dict, redis_url: str, tmp_path
     assert compared == per_moment * (len(stage1) + len(stage2))
 
     # every partition was applied, and the group still had both members at the end
-    assert sorted(client.store.positions()) == [f"{TOPIC}:{p}" for p in range(4)]
+    assert sorted(client.store.positions()) == [f"{topic}:{p}" for p in range(4)]
     assert all(_held(log) for log in live["logs"])
+    # the consumers ran with the client asked for
+    uses_librdkafka = ["with librdkafka" in log.read_text() for log in live["logs"]]
+    assert uses_librdkafka == [live["client"] == "confluent"] * 2
     # the checkpoints caught trips in progress, and the day had every kind of fault
     assert any(row["trip_active"] for k, row in expected.items() if k[1] == "vehicle")
     assert {"too_late", "duplicate", "from_future", "malformed"} <= day["reasons"]
