@@ -262,15 +262,34 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
         ttl[key] = presence_ttl
 
     chains = _vehicle_chains(delta) if hist else {}
+    # per fix: close the interval it supersedes, open its own; an interval opened and closed
+    # within the batch is written once, with its closing score
+    opened: dict[str, dict[str, str]] = {}  # presence key -> member -> score
     for vid, chain in chains.items():
         for arrival, before, after in chain:
-            ident = None if before is None else (before.cell, before.status, before.event_ms)
-            if ident == (after.cell, after.status, after.event_ms):
-                continue
             if before is not None:
-                leave(vid, before.cell, before.status, before.event_ms, before.arrival_ms,
-                      arrival)
-            enter(vid, after.cell, after.status, after.event_ms, after.arrival_ms)
+                bev = before.event_ms
+                if (before.cell, before.status, bev) == (after.cell, after.status,
+                                                         after.event_ms):
+                    continue
+                if before.status in PRESENCE_STATUSES:
+                    key = layout.presence(before.cell, before.status)
+                    member = f"{vid}|{bev}|{before.arrival_ms}"
+                    score = str(min(arrival, bev + horizon + 1))
+                    mine = opened.get(key)
+                    if mine is not None and member in mine:
+                        mine[member] = score
+                    else:
+                        zclose.setdefault(key, []).extend((score, member))
+                        ttl[key] = presence_ttl
+            if after.status in PRESENCE_STATUSES:
+                key = layout.presence(after.cell, after.status)
+                aev = after.event_ms
+                opened.setdefault(key, {})[f"{vid}|{aev}|{after.arrival_ms}"] = str(
+                    aev + horizon + 1)
+                ttl[key] = presence_ttl
+    for key, members in opened.items():
+        zadd.setdefault(key, []).extend(x for m, sc in members.items() for x in (sc, m))
     for vid, mv in delta.presence.items():
         if vid not in chains:  # no per-fix log for it: the batch's net move
             leave(vid, mv.old_cell, mv.old_status, mv.old_event_ms, mv.old_arrival_ms,
