@@ -18,6 +18,7 @@ import datetime as dt
 import io
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
+from itertools import repeat
 from pathlib import Path
 from typing import Any
 
@@ -36,6 +37,8 @@ from featurestore.schema import (
     row_raw,
     to_epoch_ms,
 )
+from replay.columns import decode_batch
+from replay.columns import with_assumed_arrival as _with_assumed_arrival
 
 FORMATS = ("parquet", "csv", "jsonl")
 NUMERIC = ("event_ts", "arrival_ts", "lat", "lon", "speed_mps")
@@ -66,15 +69,6 @@ def detect_format(path: str | Path) -> str:
         if name.endswith(suffix) or name.endswith(suffix + ".gz"):
             return fmt
     raise InputError(f"{path}: cannot tell the format from the name; use .parquet, .csv or .jsonl")
-
-
-def _with_assumed_arrival(row: dict[str, Any], delay_ms: int | None) -> dict[str, Any]:
-    if delay_ms is not None and row.get("arrival_ts") in (None, ""):
-        try:
-            row["arrival_ts"] = (to_epoch_ms(row.get("event_ts")) + delay_ms) / 1000
-        except ValueError:
-            pass  # the event_ts itself is invalid; validation says so
-    return row
 
 
 def _text_cells(row: Mapping[str, str | None]) -> dict[str, Any]:
@@ -128,10 +122,9 @@ def iter_parquet(path: Path, source: int, delay_ms: int | None, batch_rows: int
         return
     row = 0
     for batch in pf.iter_batches(batch_size=batch_rows):
-        for rec in batch.to_pylist():
-            fixed = rec if delay_ms is None else _with_assumed_arrival(dict(rec), delay_ms)
-            yield Item(source, row, decode_row(fixed, rec))
-            row += 1
+        values = decode_batch(batch, delay_ms)  # the schema's answer for each row, columnar
+        yield from map(Item, repeat(source, len(values)), range(row, row + len(values)), values)
+        row += len(values)
 
 
 _TAPE_BATCH_ROWS = 8192  # a tape is many files merged at once: keep each one's batch small
