@@ -270,8 +270,8 @@ class ConfluentSource:
                 if should_stop():
                     raise SourceUnavailable(f"broker {self.bootstrap} unreachable") from None
                 wait = backoff.next()
-                log.warning("no answer from broker %s within %.0f s (%s); trying again in "
-                            "%.1f s", self.bootstrap, timeout_s, _exc_text(exc), wait)
+                log.warning("broker %s unreachable: no answer within %.0f s (%s); trying "
+                            "again in %.1f s", self.bootstrap, timeout_s, _exc_text(exc), wait)
                 backoff.sleep(wait, should_stop)
                 continue
             backoff.reset()

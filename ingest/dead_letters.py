@@ -195,6 +195,7 @@ class ConfluentDeadLetters:
             found, why = False, _confluent_text(exc)
         if not found:
             self._producer.flush(0)
+            self._producer = None  # destroys librdkafka's handle (threads, connections) now
             raise DeadLetterError(
                 f"dead-letter topic {self.topic!r} not found on {bootstrap} ({why}): create it, "
                 f"or name another with --dead-letter-topic")
@@ -267,10 +268,14 @@ class ConfluentDeadLetters:
                                   f"{_confluent_text(result[0])}")
 
     def close(self) -> None:
+        if self._producer is None:
+            return
         try:
             self._producer.flush(self.timeout_s)
         except Exception as exc:  # noqa: BLE001 - closing anyway
             log.debug("closing the dead-letter producer: %s", exc)
+        finally:
+            self._producer = None  # destroys librdkafka's handle (threads, connections) now
 
 
 def _confluent_code(err: Any) -> str:

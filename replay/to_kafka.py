@@ -445,7 +445,12 @@ class ConfluentPusher:
             self.undelivered = left
 
     def close(self, timeout: float | None = None) -> None:
-        self.flush(timeout if timeout is not None else 10.0)
+        try:
+            self.flush(timeout if timeout is not None else 10.0)
+        finally:
+            # its callbacks refer back to this object: drop the cycle so that librdkafka's
+            # handle (threads, connections) is destroyed now, not at some later collection
+            self._p = None
 
     def partitions_for(self, topic: str) -> set[int] | None:
         md = self._p.list_topics(timeout=15.0)  # every topic: naming one may create it
