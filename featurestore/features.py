@@ -44,7 +44,27 @@ def live_vehicle(state: VehicleState | None, as_of_ms: int, cfg: EngineConfig
 
 def _window_sums(buckets: dict[int, Sequence[int]], hi: int, lengths: Sequence[int]
                  ) -> list[tuple[int, int, int]]:
-    """Per window length n (ascending): (fixes, pickups, dropoffs) over buckets hi-n+1 .. hi."""
+    """Per window length n (ascending): (fixes, pickups, dropoffs) over buckets hi-n+1 .. hi.
+
+    Integer sums, so the order of addition does not matter: where few buckets hold counts
+    (most cells of a lookup's rings), those are walked instead of every bucket of the windows.
+    """
+    if not buckets:
+        return [(0, 0, 0)] * len(lengths)
+    if 2 * len(buckets) < lengths[-1]:
+        sums = [[0, 0, 0] for _ in lengths]
+        for b, v in buckets.items():
+            age = hi - b
+            if age < 0:
+                continue
+            for k, n in enumerate(lengths):
+                if age < n:  # in this window and every longer one
+                    for row in sums[k:]:
+                        row[0] += v[0]
+                        row[1] += v[1]
+                        row[2] += v[2]
+                    break
+        return [(f, p, d) for f, p, d in sums]
     out: list[tuple[int, int, int]] = []
     f = p = d = 0
     age = 0

@@ -36,7 +36,6 @@ import math
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Any
 
 import orjson
 
@@ -372,142 +371,133 @@ def flatten(checks: list[str], ops: Iterable[Op]) -> list[str]:
 # ------------------------------------------------------------------------------------------
 @dataclass
 class ReadPlan:
-    """Commands for one read and the function that turns their replies into a ReadResult."""
+    """The read script's request for one read, and the parser of its reply.
 
-    commands: list[Command]
-    parse: Callable[[list], ReadResult]
+    ``request`` is one string of records (RECORD_SEPARATOR between records, SEPARATOR between
+    fields); the script answers one string with one record per request record, in order.
+    Records (``featurestore.redis_store.READ_LUA`` runs them):
+
+    - ``V key log``: a vehicle's state as of T (the state before the first logged change
+      after T, else the current state; ``log`` empty without history) -> the state's JSON,
+      ``-`` or empty for none;
+    - ``C lo hi log block...``: a cell's counters for buckets lo..hi from its blocks, minus
+      the log's increments after T -> ``bucket f p d`` for every non-zero bucket;
+    - ``P vacant occupied min_event``: vehicles present in a cell at T by status (interval
+      open at T, known by T, event at or after min_event) -> ``vacant occupied``;
+    - ``R key log day_lo day_hi``: a route's day sums ``n s q`` per day (empty: none), then,
+      after GROUP_SEPARATOR, the ``day dur`` of its trips logged after T;
+    - ``* command args...``: any command; an array reply is joined by SEPARATOR, a missing
+      value as the empty string (which no stored value is).
+    """
+
+    request: str
+    parse: Callable[[list[bytes]], ReadResult]
 
 
-_COLUMN = {ord("f"): 0, ord("p"): 1, ord("d"): 2}  # counter field prefix -> column
+GROUP_SEPARATOR = "\x1d"  # between the two parts of a route record's reply
 
 
-def _num(v: bytes | str | None) -> int:
-    return 0 if v is None else int(v)
+def _num(v: bytes) -> int:
+    return int(v) if v else 0
 
 
 def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int,
               with_logs: bool | None = None) -> ReadPlan:
-    """Commands answering ``request`` as of ``as_of_ms`` (history replies are subtracted; the
+    """The read answering ``request`` as of ``as_of_ms`` (history replies are subtracted; the
     caller checks that ``as_of_ms`` is within the history the writers keep, which the first
-    reply after the watermark gives). ``with_logs`` defaults to the layout keeping history."""
-    t = as_of_ms
+    reply after the watermark gives). ``with_logs`` defaults to the layout keeping history.
+    With ``request.with_progress`` the positions, arrivals, end offsets and counts come too.
+
+    The script does the per-key work next to the data (it filters the counter blocks to the
+    buckets asked for, subtracts the logs, counts presence), so the reply holds only the
+    numbers the features need."""
     hist = layout.history_ms > 0 if with_logs is None else with_logs
-    after = f"({t}"
-    cmds: list[Command] = [("HGET", layout.meta, "wm"), ("HGET", layout.meta, "history_ms")]
-    steps: list[Callable[[ReadResult, Iterable], None]] = []
+    fs = SEPARATOR
+    recs = [f"*{fs}HMGET{fs}{layout.meta}{fs}wm{fs}history_ms"]
 
-    def on(n: int, fn: Callable[..., None]) -> None:
-        steps.append(lambda out, it: fn(out, *[next(it) for _ in range(n)]))
-
-    for vid in dict.fromkeys(request.vehicles):
-        cmds.append(("GET", layout.vehicle(vid)))
-        if hist:
-            cmds.append(("ZRANGEBYSCORE", layout.vehicle_log(vid), after, "+inf",
-                         "LIMIT", 0, 1))
-
-        def vehicle(out: ReadResult, raw: bytes | None, log: list | None = None,
-                    vid: str = vid) -> None:
-            state = _parse_state(raw)
-            if log:  # the state before the first change after T is the state at T
-                state = _parse_state(log[0].split(b"|", 2)[2])
-            if state is not None:
-                out.vehicles[vid] = state
-
-        on(2 if hist else 1, vehicle)
+    vids = list(dict.fromkeys(request.vehicles))
+    for vid in vids:
+        recs.append(f"V{fs}{layout.vehicle(vid)}{fs}{layout.vehicle_log(vid) if hist else ''}")
 
     bb = layout.block_buckets
     hi = request.bucket_hi
-    for cell, lo in request.cells.items():
-        if hi < lo:
-            continue
-        blocks = range(lo // bb, hi // bb + 1)
-        # whole blocks: only the counters that exist come back (most buckets of a cell are
-        # empty), far less than asking for every field of the range
-        cmds.extend(("HGETALL", layout.cell_block(cell, block)) for block in blocks)
-        if hist:
-            cmds.append(("ZRANGEBYSCORE", layout.cell_log(cell), after, "+inf"))
+    cells = [(cell, lo) for cell, lo in request.cells.items() if lo <= hi]
+    for cell, lo in cells:
+        # whole blocks: the script reads only the counters that exist (most buckets of a cell
+        # are empty) and keeps those of lo..hi
+        blocks = fs.join(layout.cell_block(cell, b) for b in range(lo // bb, hi // bb + 1))
+        recs.append(f"C{fs}{lo}{fs}{hi}{fs}{layout.cell_log(cell) if hist else ''}{fs}{blocks}")
 
-        def cells(out: ReadResult, *replies: Any, cell: str = cell, nblocks: int = len(blocks),
-                  lo: int = lo) -> None:
-            got: dict[int, list[int]] = {}
-            for fields in replies[:nblocks]:
-                for name, v in fields.items():
-                    b = int(name[1:])
-                    if lo <= b <= hi:
-                        row = got.get(b)
-                        if row is None:
-                            row = got[b] = [0, 0, 0]
-                        row[_COLUMN[name[0]]] += int(v)
-            if len(replies) > nblocks:
-                for entry in replies[-1]:
-                    _, _, b, f, p, d = entry.split(b"|")
-                    b = int(b)
-                    if lo <= b <= hi and b in got:
-                        row = got[b]
-                        row[0] -= int(f)
-                        row[1] -= int(p)
-                        row[2] -= int(d)
-            rows = {b: (r[0], r[1], r[2]) for b, r in got.items() if r != [0, 0, 0]}
-            if rows:
-                out.cells[cell] = rows
-
-        on(len(blocks) + (1 if hist else 0), cells)
-
+    pcells = list(dict.fromkeys(request.presence_cells))
     m = request.presence_min_event_ms
-    for cell in dict.fromkeys(request.presence_cells):
-        for status in ("vacant", "occupied"):
-            cmds.append(("ZRANGEBYSCORE", layout.presence(cell, status), after, "+inf"))
-
-        def presence(out: ReadResult, vac: list, occ: list, cell: str = cell) -> None:
-            out.presence[cell] = (_present(vac, t, m), _present(occ, t, m))
-
-        on(2, presence)
+    for cell in pcells:
+        recs.append(f"P{fs}{layout.presence(cell, 'vacant')}{fs}"
+                    f"{layout.presence(cell, 'occupied')}{fs}{m}")
 
     dlo, dhi = request.day_lo, request.day_hi
-    days = range(dlo, dhi + 1)
-    for key in dict.fromkeys(request.routes):
-        if dhi < dlo:
-            continue
-        cmds.append(("HMGET", layout.route(key), *[f"{k}{d}" for d in days for k in "nsq"]))
-        if hist:
-            cmds.append(("ZRANGEBYSCORE", layout.route_log(key), after, "+inf"))
+    routes = list(dict.fromkeys(request.routes)) if dlo <= dhi else []
+    for key in routes:
+        recs.append(f"R{fs}{layout.route(key)}{fs}{layout.route_log(key) if hist else ''}"
+                    f"{fs}{dlo}{fs}{dhi}")
 
-        def route(out: ReadResult, vals: list, log: list | None = None,
-                  key: RouteKey = key) -> None:
+    progress = request.with_progress
+    if progress:
+        recs += [f"*{fs}HGETALL{fs}{k}" for k in (layout.positions, layout.arrivals,
+                                                   layout.highwaters, layout.counts)]
+
+    def parse(replies: list[bytes]) -> ReadResult:
+        wm, kept = replies[0].split(b"\x1f")
+        out = ReadResult(watermark_ms=int(wm) if wm else None)
+        out.history_ms = int(kept) if kept else None
+        i = 1
+        for vid, raw in zip(vids, replies[i:i + len(vids)], strict=True):
+            state = _parse_state(raw or None)
+            if state is not None:
+                out.vehicles[vid] = state
+        i += len(vids)
+        for (cell, _), raw in zip(cells, replies[i:i + len(cells)], strict=True):
+            if raw:
+                v = [int(x) for x in raw.split(b"\x1f")]
+                out.cells[cell] = dict(zip(v[0::4], zip(v[1::4], v[2::4], v[3::4], strict=True),
+                                           strict=True))
+        i += len(cells)
+        for cell, raw in zip(pcells, replies[i:i + len(pcells)], strict=True):
+            vac, occ = raw.split(b"\x1f")
+            out.presence[cell] = (int(vac), int(occ))
+        i += len(pcells)
+        for key, raw in zip(routes, replies[i:i + len(routes)], strict=True):
+            sums, _, log = raw.partition(b"\x1d")
+            vals = sums.split(b"\x1f")
             n = sum(_num(v) for v in vals[0::3])
             s1 = sum(_num(v) for v in vals[1::3])
             s2 = sum(_num(v) for v in vals[2::3])
-            for entry in log or ():
-                _, _, day, dur = entry.split(b"|")
-                if dlo <= int(day) <= dhi:
-                    n -= 1
-                    s1 -= int(dur)
-                    s2 -= int(dur) ** 2
+            if log:
+                items = log.split(b"\x1f")
+                for day, dur in zip(items[0::2], items[1::2], strict=True):
+                    if dlo <= int(day) <= dhi:
+                        d = int(dur)
+                        n -= 1
+                        s1 -= d
+                        s2 -= d * d
             if n:
                 out.routes[key] = (n, s1, s2)
-
-        on(2 if hist else 1, route)
-
-    def parse(replies: list) -> ReadResult:
-        it = iter(replies)
-        wm = next(it)
-        kept = next(it)
-        out = ReadResult(watermark_ms=None if wm is None else int(wm))
-        out.history_ms = None if kept is None else int(kept)
-        for step in steps:
-            step(out, it)
+        i += len(routes)
+        if progress:
+            nxt, arr, hw, counts = (_pairs(r) for r in replies[i:i + 4])
+            out.positions = parse_positions(nxt, arr)
+            out.highwaters = {k: int(v) for k, v in hw.items()}
+            out.counts = {k: int(v) for k, v in counts.items()}
         return out
 
-    return ReadPlan(cmds, parse)
+    return ReadPlan(RECORD_SEPARATOR.join(recs), parse)
 
 
-def _present(members: list, t: int, min_event_ms: int) -> int:
-    n = 0
-    for m in members:
-        _, ev, arr = m.rsplit(b"|", 2)
-        if int(arr) <= t and int(ev) >= min_event_ms:
-            n += 1
-    return n
+def _pairs(raw: bytes) -> dict[str, bytes]:
+    """A packed HGETALL reply as {field: value}."""
+    if not raw:
+        return {}
+    items = raw.split(b"\x1f")
+    return dict(zip((k.decode() for k in items[0::2]), items[1::2], strict=True))
 
 
 def parse_positions(next_offsets: Mapping, arrivals: Mapping) -> dict[str, SourcePosition]:

@@ -15,8 +15,6 @@ from typing import Any
 
 from featurestore.config import EngineConfig
 from featurestore.redis_layout import (
-    RECORD_SEPARATOR,
-    SEPARATOR,
     Layout,
     decode_state,
     delta_ops,
@@ -107,55 +105,173 @@ return ops
 """
 
 
-# The read script: run the read's commands (one string: commands separated by 0x1E, their
-# arguments by 0x1F) and answer one string likewise (an array's items joined by 0x1F, a
-# missing value as the empty string, which no stored value is). One round trip, atomic like
-# MULTI/EXEC, and two strings for redis-py to encode and parse instead of thousands of
-# arguments and replies (their encoding was most of a lookup's time).
+# The read script: run a read's records (one string: records separated by 0x1E, their fields by
+# 0x1F; see ``featurestore.redis_layout.ReadPlan``) and answer one string, one record per
+# request record, likewise separated. The per-key work happens here, next to the data: cell
+# blocks are filtered to the buckets asked for and the logs subtracted, presence is counted,
+# so the reply holds only the numbers the features need. One round trip, atomic like
+# MULTI/EXEC, two strings for redis-py to encode and parse. Numbers stay exact: Lua's doubles
+# hold integers to 2^53, far above any counter summed here (route sums are summed by the
+# caller, in Python integers).
 READ_LUA = """
 local unpack = table.unpack or unpack
-local req = ARGV[1]
+local find, sub, byte, match = string.find, string.sub, string.byte, string.match
+local concat = table.concat
+local t = tonumber(ARGV[1])
+local after = '(' .. ARGV[1]
+local req = ARGV[2]
+local COL = {[102] = 1, [112] = 2, [100] = 3}  -- counter field prefix f, p, d -> column
+local BUCKET = {}  -- counter field name -> its bucket (a number)
+local BTEXT = {}  -- bucket -> its text, as in the field names
+local DAYS = {}  -- 'lo:hi' -> the route fields of those days
+-- Same-width decimal numbers compare as text like numbers: a cheap first test of a counter
+-- field's bucket (the exact one follows), used where the collation agrees on digits.
+local textual = ('0' < '1') and ('1' < '2') and ('2' < '3') and ('3' < '4') and ('4' < '5')
+  and ('5' < '6') and ('6' < '7') and ('7' < '8') and ('8' < '9')
 local out = {}
 local n = #req
 local s = 1
 while s <= n do
-  local e = string.find(req, '\\30', s, true) or (n + 1)
-  local args = {}
-  local a = s
-  while a <= e do
-    local b = string.find(req, '\\31', a, true)
-    if not b or b > e then b = e end
-    args[#args + 1] = string.sub(req, a, b - 1)
-    a = b + 1
+  local e = find(req, '\\30', s, true) or (n + 1)
+  local a = {}
+  local p = s
+  while p <= e do
+    local q = find(req, '\\31', p, true)
+    if not q or q > e then q = e end
+    a[#a + 1] = sub(req, p, q - 1)
+    p = q + 1
   end
-  local r = redis.call(unpack(args))
-  if type(r) == 'table' then
-    for i = 1, #r do
-      if r[i] == false then r[i] = '' else r[i] = tostring(r[i]) end
+  local kind = a[1]
+  if kind == 'V' then
+    local st = nil
+    if a[3] ~= '' then
+      local log = redis.call('ZRANGEBYSCORE', a[3], after, '+inf', 'LIMIT', 0, 1)
+      if log[1] then  -- the state before the first change after T is the state at T
+        local p1 = find(log[1], '|', 1, true)
+        local p2 = find(log[1], '|', p1 + 1, true)
+        st = sub(log[1], p2 + 1)
+      end
     end
-    out[#out + 1] = table.concat(r, '\\31')
-  elseif r == false or r == nil then
-    out[#out + 1] = ''
+    if st == nil then st = redis.call('GET', a[2]) or '' end
+    out[#out + 1] = st
+  elseif kind == 'C' then
+    local lo, hi = tonumber(a[2]), tonumber(a[3])
+    local quick = textual and #a[2] == #a[3]
+    local lows = {'f' .. a[2], 'p' .. a[2], 'd' .. a[2]}
+    local highs = {'f' .. a[3], 'p' .. a[3], 'd' .. a[3]}
+    local got, order = {}, {}
+    for k = 5, #a do
+      local h = redis.call('HGETALL', a[k])
+      for j = 1, #h, 2 do
+        local name = h[j]
+        local c = COL[byte(name, 1)]
+        if c and (not quick or (name >= lows[c] and name <= highs[c])) then
+          local b = BUCKET[name]
+          if not b then
+            b = tonumber(sub(name, 2))
+            BUCKET[name] = b
+            if not BTEXT[b] then BTEXT[b] = sub(name, 2) end
+          end
+          if b >= lo and b <= hi then
+            local row = got[b]
+            if not row then
+              row = {'0', '0', '0'}
+              got[b] = row
+              order[#order + 1] = b
+            end
+            row[c] = h[j + 1]  -- one field per bucket and column: no sum needed
+          end
+        end
+      end
+    end
+    if a[4] ~= '' and #order > 0 then
+      local log = redis.call('ZRANGEBYSCORE', a[4], after, '+inf')
+      for j = 1, #log do
+        local b, f, pk, d = match(log[j], '^[^|]*|[^|]*|([^|]*)|([^|]*)|([^|]*)|([^|]*)$')
+        b = tonumber(b)
+        local row = got[b]
+        if row and b >= lo and b <= hi then
+          row[1] = tostring(tonumber(row[1]) - tonumber(f))
+          row[2] = tostring(tonumber(row[2]) - tonumber(pk))
+          row[3] = tostring(tonumber(row[3]) - tonumber(d))
+        end
+      end
+    end
+    local parts = {}
+    local m = 0
+    for j = 1, #order do
+      local b = order[j]
+      local r = got[b]
+      if r[1] ~= '0' or r[2] ~= '0' or r[3] ~= '0' then
+        parts[m + 1] = BTEXT[b]
+        parts[m + 2] = r[1]
+        parts[m + 3] = r[2]
+        parts[m + 4] = r[3]
+        m = m + 4
+      end
+    end
+    out[#out + 1] = concat(parts, '\\31')
+  elseif kind == 'P' then
+    local m = tonumber(a[4])
+    local c = {}
+    for k = 2, 3 do
+      local members = redis.call('ZRANGEBYSCORE', a[k], after, '+inf')
+      local cnt = 0
+      for j = 1, #members do
+        local ev, arr = match(members[j], '|(%-?%d+)|(%-?%d+)$')
+        if tonumber(arr) <= t and tonumber(ev) >= m then cnt = cnt + 1 end
+      end
+      c[k - 1] = cnt
+    end
+    out[#out + 1] = c[1] .. '\\31' .. c[2]
+  elseif kind == 'R' then
+    local span = a[4] .. ':' .. a[5]
+    local fields = DAYS[span]
+    if not fields then
+      fields = {}
+      for d = tonumber(a[4]), tonumber(a[5]) do
+        local day = tostring(d)
+        fields[#fields + 1] = 'n' .. day
+        fields[#fields + 1] = 's' .. day
+        fields[#fields + 1] = 'q' .. day
+      end
+      DAYS[span] = fields
+    end
+    local vals = redis.call('HMGET', a[2], unpack(fields))
+    for j = 1, #fields do
+      if not vals[j] then vals[j] = '' end
+    end
+    local r = concat(vals, '\\31', 1, #fields)
+    if a[3] ~= '' then
+      local log = redis.call('ZRANGEBYSCORE', a[3], after, '+inf')
+      if #log > 0 then
+        local items = {}
+        for j = 1, #log do
+          local day, dur = match(log[j], '^[^|]*|[^|]*|([^|]*)|([^|]*)$')
+          items[#items + 1] = day
+          items[#items + 1] = dur
+        end
+        r = r .. '\\29' .. concat(items, '\\31')
+      end
+    end
+    out[#out + 1] = r
   else
-    out[#out + 1] = tostring(r)
+    local r = redis.call(unpack(a, 2))
+    if type(r) == 'table' then
+      for i = 1, #r do
+        if r[i] == false then r[i] = '' else r[i] = tostring(r[i]) end
+      end
+      out[#out + 1] = concat(r, '\\31')
+    elseif r == false or r == nil then
+      out[#out + 1] = ''
+    else
+      out[#out + 1] = tostring(r)
+    end
   end
   s = e + 1
 end
-return table.concat(out, '\\30')
+return concat(out, '\\30')
 """
-_ARRAY_REPLIES = {"HMGET", "ZRANGEBYSCORE", "HGETALL"}
-
-
-def _unpack_reply(command: str, raw: bytes) -> Any:
-    """One command's reply as redis-py would give it, from the read script's packed form."""
-    if command not in _ARRAY_REPLIES:
-        return raw or None
-    if command == "ZRANGEBYSCORE":
-        return raw.split(b"\x1f") if raw else []
-    items = [x or None for x in raw.split(b"\x1f")]
-    if command == "HGETALL":
-        return dict(zip(items[0::2], items[1::2], strict=True)) if raw else {}
-    return items
 
 
 class RedisStore:
@@ -233,20 +349,8 @@ class RedisStore:
             t = self.watermark_ms() or 0
         plan = read_plan(request, self.layout, t,
                          with_logs=True if self.history_from_state else None)
-        commands = list(plan.commands)
-        if request.with_progress:
-            lay = self.layout
-            commands += [("HGETALL", k) for k in (lay.positions, lay.arrivals, lay.highwaters,
-                                                  lay.counts)]
-        packed = SEPARATOR.join(str(x) for x in commands[0])
-        for cmd in commands[1:]:
-            packed += RECORD_SEPARATOR + SEPARATOR.join(str(x) for x in cmd)
-        raw = self._read(keys=[], args=[packed])
-        replies = [_unpack_reply(cmd[0], r)
-                   for cmd, r in zip(commands, raw.split(b"\x1e"), strict=True)]
-        if request.with_progress:
-            *replies, nxt, arr, hw, counts = replies
-        out = plan.parse(replies)
+        raw = self._read(keys=[], args=[t, plan.request])
+        out = plan.parse(raw.split(b"\x1e"))
         wm = out.watermark_ms
         if wm is not None and t < wm:
             kept = self.effective_history_ms(out.history_ms)
@@ -255,10 +359,6 @@ class RedisStore:
                     f"as of {t} ms is before what this store can answer: its watermark is {wm} "
                     f"ms and it keeps {kept} ms of history"
                 )
-        if request.with_progress:
-            out.positions = parse_positions(nxt, arr)
-            out.highwaters = {_s(k): int(v) for k, v in hw.items()}
-            out.counts = {_s(k): int(v) for k, v in counts.items()}
         return out
 
     def effective_history_ms(self, recorded: int | None) -> int:
