@@ -523,6 +523,8 @@ def figures(case: MemoryCase) -> list[Figure]:
         "cell_buckets": case.cell_buckets, "cell_life_min": round(case.cell_life_min, 1),
         "steady_cells_bytes": round(case.steady_cells),
         "steady_routes_bytes": round(case.steady_routes),
+        "route_keys_per_hour": case.route_keys_per_hour,
+        "route_key_all_days_bytes": case.route_key_full,
         "families": {f: {"keys": u.keys, "entries": round(u.entries), "bytes": round(u.bytes),
                          "bytes_per_vehicle": round(u.bytes / n, 1),
                          "sampled_keys": u.sampled}
@@ -538,11 +540,6 @@ def figures(case: MemoryCase) -> list[Figure]:
                "bytes", better="lower", target=target,
                met=case.steady_total / n <= TARGET_BYTES_PER_VEHICLE),
     ]
-    for fam in FAMILIES:
-        u = case.families.get(fam)
-        if u is not None:
-            out.append(Figure("memory", f"  of which {fam} {FAMILIES[fam]}, {tag}",
-                              round(u.bytes / n, 1), "bytes/vehicle", better="lower"))
     if case.per_cell_bucket is not None:
         out.append(Figure("memory", f"Redis bytes per cell-bucket, {tag}",
                           round(case.per_cell_bucket, 1), "bytes", better="lower"))
