@@ -336,8 +336,17 @@ class ConfluentSource:
 
     # --- Source ------------------------------------------------------------------------------
     def poll(self, timeout_s: float, max_records: int) -> list[SourceRecord]:
+        """As kafka-python's poll: what is ready now, else wait up to ``timeout_s`` for the
+        first record and take what is ready with it (librdkafka's ``consume(n, timeout)``
+        alone would wait for n records or the whole timeout)."""
+        n = max(1, max_records)
+        consume = self._consumer.consume
         try:
-            msgs = self._consumer.consume(max(1, max_records), max(0.0, timeout_s))
+            msgs = consume(n, 0)
+            if not msgs and timeout_s > 0:
+                msgs = consume(1, timeout_s)
+                if msgs and n > 1:
+                    msgs += consume(n - 1, 0)
         except Exception as exc:  # noqa: BLE001 - KafkaException, or RuntimeError when closed
             raise SourceUnavailable(f"broker {self.bootstrap}: {_exc_text(exc)}") from exc
         out: list[SourceRecord] = []

@@ -14,6 +14,7 @@ from pathlib import Path
 
 import pytest
 from ingest_support import (
+    KAFKA_CLIENTS,
     compare_with_replay,
     produce_day,
     redis_cell_fixes,
@@ -73,11 +74,19 @@ class _Slowed:
         return getattr(self.store, name)
 
 
-def _member(bootstrap: str, topic: str, url: str, group: str, slow=lambda: False
-            ) -> ConsumerLoop:
-    source = KafkaSource(bootstrap, topic, group, settings=SETTINGS)
+def _member(bootstrap: str, topic: str, url: str, group: str, slow=lambda: False,
+            client: str = "kafka-python") -> ConsumerLoop:
+    if client == "confluent":
+        from ingest.confluent_source import ConfluentSource
+        from ingest.dead_letters import ConfluentDeadLetters
+
+        source: object = ConfluentSource(bootstrap, topic, group, settings=SETTINGS)
+        sink: object = ConfluentDeadLetters(bootstrap, f"{topic}-dead-letters")
+    else:
+        source = KafkaSource(bootstrap, topic, group, settings=SETTINGS)
+        sink = KafkaDeadLetters(bootstrap, f"{topic}-dead-letters")
     return ConsumerLoop(source, _Slowed(RedisStore.from_url(url, history_ms=900_000), slow),
-                        KafkaDeadLetters(bootstrap, f"{topic}-dead-letters"),
+                        sink,
                         options=LoopOptions(max_poll_records=10, poll_timeout_s=0.1,
                                             idle_exit_s=3.0))
 
@@ -86,14 +95,16 @@ def _applied(store: RedisStore) -> int:
     return sum(store.offsets().values())
 
 
+@pytest.mark.parametrize("client", KAFKA_CLIENTS)
 def test_a_second_member_takes_over_partitions_and_the_state_equals_replay(
-        kafka_broker, redis_url: str, topic, replay) -> None:
+        kafka_broker, redis_url: str, topic, replay, client: str) -> None:
     name, total = topic
     group = f"g-{name}"
     store = RedisStore.from_url(redis_url, history_ms=900_000)
     joined = threading.Event()
     first = _member(kafka_broker.bootstrap, name, redis_url, group,
-                    slow=lambda: _applied(store) >= total // 5 and not joined.is_set())
+                    slow=lambda: _applied(store) >= total // 5 and not joined.is_set(),
+                    client=client)
     errors: list[BaseException] = []
 
     def run(loop: ConsumerLoop) -> None:
@@ -108,7 +119,7 @@ def test_a_second_member_takes_over_partitions_and_the_state_equals_replay(
     while _applied(store) < total // 5 and time.monotonic() < deadline:
         time.sleep(0.005)
     assert _applied(store) < total  # the second member joins mid-stream
-    second = _member(kafka_broker.bootstrap, name, redis_url, group)
+    second = _member(kafka_broker.bootstrap, name, redis_url, group, client=client)
     t2 = threading.Thread(target=run, args=(second,), daemon=True)
     t2.start()
     while not second.source.assignment() and time.monotonic() < deadline:
