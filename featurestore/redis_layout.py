@@ -384,7 +384,7 @@ class ReadPlan:
       the log's increments after T -> ``bucket f p d`` for every non-zero bucket;
     - ``P vacant occupied min_event``: vehicles present in a cell at T by status (interval
       open at T, known by T, event at or after min_event) -> ``vacant occupied``;
-    - ``R key log day_lo day_hi``: a route's day sums ``n s q`` per day (empty: none), then,
+    - ``R key log day_lo day_hi``: a route's sums ``n s q`` of each day that has trips, then,
       after GROUP_SEPARATOR, the ``day dur`` of its trips logged after T;
     - ``* command args...``: any command; an array reply is joined by SEPARATOR, a missing
       value as the empty string (which no stored value is).
@@ -395,10 +395,6 @@ class ReadPlan:
 
 
 GROUP_SEPARATOR = "\x1d"  # between the two parts of a route record's reply
-
-
-def _num(v: bytes) -> int:
-    return int(v) if v else 0
 
 
 def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int,
@@ -457,7 +453,7 @@ def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int,
         i += len(vids)
         for (cell, _), raw in zip(cells, replies[i:i + len(cells)], strict=True):
             if raw:
-                v = [int(x) for x in raw.split(b"\x1f")]
+                v = list(map(int, raw.split(b"\x1f")))
                 out.cells[cell] = dict(zip(v[0::4], zip(v[1::4], v[2::4], v[3::4], strict=True),
                                            strict=True))
         i += len(cells)
@@ -467,10 +463,10 @@ def read_plan(request: ReadRequest, layout: Layout, as_of_ms: int,
         i += len(pcells)
         for key, raw in zip(routes, replies[i:i + len(routes)], strict=True):
             sums, _, log = raw.partition(b"\x1d")
-            vals = sums.split(b"\x1f")
-            n = sum(_num(v) for v in vals[0::3])
-            s1 = sum(_num(v) for v in vals[1::3])
-            s2 = sum(_num(v) for v in vals[2::3])
+            vals = list(map(int, sums.split(b"\x1f"))) if sums else []
+            n = sum(vals[0::3])
+            s1 = sum(vals[1::3])
+            s2 = sum(vals[2::3])
             if log:
                 items = log.split(b"\x1f")
                 for day, dur in zip(items[0::2], items[1::2], strict=True):

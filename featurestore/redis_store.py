@@ -238,10 +238,15 @@ while s <= n do
       DAYS[span] = fields
     end
     local vals = redis.call('HMGET', a[2], unpack(fields))
-    for j = 1, #fields do
-      if not vals[j] then vals[j] = '' end
+    local sums = {}  -- the days that have trips, as n s q
+    for j = 1, #fields, 3 do
+      if vals[j] or vals[j + 1] or vals[j + 2] then
+        sums[#sums + 1] = vals[j] or '0'
+        sums[#sums + 1] = vals[j + 1] or '0'
+        sums[#sums + 1] = vals[j + 2] or '0'
+      end
     end
-    local r = concat(vals, '\\31', 1, #fields)
+    local r = concat(sums, '\\31')
     if a[3] ~= '' then
       local log = redis.call('ZRANGEBYSCORE', a[3], after, '+inf')
       if #log > 0 then

@@ -11,13 +11,13 @@ which refer to the app's catalog, at definition time.
 
 import datetime as dt
 import logging
-import math
 import re
 import sys
 import time
 from collections.abc import Callable, Iterable, Mapping
 from typing import Annotated, Any, Literal, Union
 
+import orjson
 import redis.exceptions
 from fastapi import Body, FastAPI, Path, Query, Request
 from fastapi.concurrency import run_in_threadpool
@@ -253,12 +253,21 @@ def vector_models(catalog: Catalog) -> dict[str, type[BaseModel]]:
     }
 
 
-def _nulls(vector: Mapping[str, object], kind: str) -> dict[str, object]:
-    """A vector with NaN floats as None (JSON null) and its kind."""
+def _ordered(vector: Mapping[str, object], kind: str, names: tuple[str, ...]
+             ) -> dict[str, object]:
+    """A vector with its kind, its fields in the order of its model (``names``: the model's
+    fields after ``kind``); NaN stays NaN, which orjson writes as null."""
     out: dict[str, object] = {"kind": kind}
-    for k, v in vector.items():
-        out[k] = None if type(v) is float and math.isnan(v) else v
+    for k in names:
+        out[k] = vector[k]
     return out
+
+
+def _json(body: Mapping[str, object]) -> Response:
+    """A 200 answer written by orjson (NaN and infinities as null). Returning a Response skips
+    FastAPI's validation of the answer against its response model, which only documents it:
+    the vectors are built in the models' field order from the catalog's own features."""
+    return Response(orjson.dumps(body), media_type="application/json")
 
 
 def _envelope(r: VectorResponse) -> dict[str, object]:
@@ -474,6 +483,7 @@ def create_app(client: FeatureClient, *, registry: CollectorRegistry | None = No
         __doc__="Vectors for the requested keys, in request order, and what they are based on.",
         vectors=(list[any_vector], Field(description="one vector per key, in request order")))
     metrics = Metrics(client, registry or CollectorRegistry())
+    fields = {kind: tuple(model.model_fields)[1:] for kind, model in models.items()}
     app = FastAPI(title="cellpulse", version=__version__, description=DESCRIPTION,
                   openapi_tags=[{"name": "lookups", "description": "feature vectors as of a "
                                                                    "moment"},
@@ -529,9 +539,10 @@ def create_app(client: FeatureClient, *, registry: CollectorRegistry | None = No
     async def get_vehicle(
         vehicle_id: Annotated[str, Path(description="1-64 of A-Z a-z 0-9 _ . : -")],
         as_of: AsOfQuery = None,
-    ) -> dict[str, object]:
+    ) -> Response:
         r = await lookup(LOOKUP_PATHS[0], 1, vehicles=[vehicle_id], as_of=parse_as_of(as_of))
-        return {**_envelope(r), "vector": _nulls(r.vehicles[0], "vehicle")}
+        return _json({**_envelope(r),
+                      "vector": _ordered(r.vehicles[0], "vehicle", fields["vehicle"])})
 
     @app.get("/v1/cells/{cell}", tags=["lookups"], response_model=one["cell"],
              responses=ERRORS, summary="Cell vector of one H3 cell")
@@ -540,9 +551,9 @@ def create_app(client: FeatureClient, *, registry: CollectorRegistry | None = No
                                               f"{catalog.config.cell_resolution} (upper case "
                                               "is accepted)")],
         as_of: AsOfQuery = None,
-    ) -> dict[str, object]:
+    ) -> Response:
         r = await lookup(LOOKUP_PATHS[1], 1, cells=[cell], as_of=parse_as_of(as_of))
-        return {**_envelope(r), "vector": _nulls(r.cells[0], "cell")}
+        return _json({**_envelope(r), "vector": _ordered(r.cells[0], "cell", fields["cell"])})
 
     @app.get("/v1/routes/{origin_cell}/{dest_cell}", tags=["lookups"],
              response_model=one["route"], responses=ERRORS,
@@ -554,15 +565,16 @@ def create_app(client: FeatureClient, *, registry: CollectorRegistry | None = No
         hour: Annotated[int | None, Query(description="pickup hour 0..23 in the city's zone "
                                                       "(default: the hour of as_of)")] = None,
         as_of: AsOfQuery = None,
-    ) -> dict[str, object]:
+    ) -> Response:
         q = RouteQuery(origin_cell.lower(), dest_cell.lower(), hour)
         r = await lookup(LOOKUP_PATHS[2], 1, routes=[q], as_of=parse_as_of(as_of))
-        return {**_envelope(r), "vector": _nulls(r.routes[0], "route")}
+        return _json({**_envelope(r),
+                      "vector": _ordered(r.routes[0], "route", fields["route"])})
 
     @app.post("/v1/vectors", tags=["lookups"], response_model=batch_model, responses=ERRORS,
               summary=f"Vectors for up to {MAX_KEYS} keys from one store read")
     async def post_vectors(body: Annotated[BatchRequest, Body(openapi_examples=BATCH_EXAMPLE)]
-                           ) -> dict[str, object]:
+                           ) -> Response:
         if len(body.keys) > MAX_KEYS:  # before any other work
             raise BadRequest(f"{len(body.keys)} keys in one request; at most {MAX_KEYS}")
         vehicles: list[str] = []
@@ -583,8 +595,8 @@ def create_app(client: FeatureClient, *, registry: CollectorRegistry | None = No
         r = await lookup(LOOKUP_PATHS[3], len(body.keys), vehicles=vehicles, cells=cells,
                          routes=routes, as_of=parse_as_of(body.as_of))
         lists = {"vehicle": r.vehicles, "cell": r.cells, "route": r.routes}
-        return {**_envelope(r),
-                "vectors": [_nulls(lists[kind][i], kind) for kind, i in order]}
+        return _json({**_envelope(r), "vectors": [_ordered(lists[kind][i], kind, fields[kind])
+                                                   for kind, i in order]})
 
     @app.get("/v1/catalog", tags=["service"], response_model=CatalogResponse,
              summary="The declared features and vector layout")
