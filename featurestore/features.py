@@ -68,39 +68,68 @@ def _window_sums(buckets: dict[int, Sequence[int]], hi: int, lengths: Sequence[i
     out: list[tuple[int, int, int]] = []
     f = p = d = 0
     age = 0
-    get = buckets.get
+    rows = list(map(buckets.get, range(hi, hi - lengths[-1], -1)))  # by age 0, 1, ...
     for n in lengths:
-        while age < n:
-            v = get(hi - age)
-            if v is not None:
-                f += v[0]
-                p += v[1]
-                d += v[2]
-            age += 1
+        held = [v for v in rows[age:n] if v is not None]
+        if held:
+            fs, ps, ds = zip(*held, strict=True)
+            f += sum(fs)
+            p += sum(ps)
+            d += sum(ds)
+        age = max(age, n)
         out.append((f, p, d))
     return out
 
 
-def cell_vector(cell: str, as_of_ms: int, raw: ReadResult, cfg: EngineConfig
-                ) -> dict[str, object]:
-    """The cell family for one cell at T. ``raw`` must hold the cell's ring buckets and presence."""
-    hi = as_of_ms // cfg.bucket_ms
+_LAYOUTS: dict[int, tuple[EngineConfig, tuple]] = {}
+
+
+def _cell_layout(cfg: EngineConfig) -> tuple[list[int], list[tuple[str, int, int]], str, int]:
+    """Per configuration: window lengths in buckets (ascending), (feature name, window index,
+    column) in vector order, the ring feature's name and the ring window in buckets."""
+    hit = _LAYOUTS.get(id(cfg))
+    if hit is not None and hit[0] is cfg:
+        return hit[1]  # type: ignore[return-value]
     windows = sorted(cfg.windows_min)
-    sums = dict(zip(windows, _window_sums(raw.cells.get(cell, {}), hi,
-                                          [cfg.window_buckets(w) for w in windows]),
-                    strict=True))
-    out: dict[str, object] = {}
-    for col, kind in ((1, "pickups"), (2, "dropoffs"), (0, "fixes")):
-        for w in cfg.windows_min:
-            out[f"cell_{kind}_{w}m"] = sums[w][col]
+    names = [(f"cell_{kind}_{w}m", windows.index(w), col)
+             for col, kind in ((1, "pickups"), (2, "dropoffs"), (0, "fixes"))
+             for w in cfg.windows_min]
+    layout = ([cfg.window_buckets(w) for w in windows], names,
+              f"cell_ring_pickups_{cfg.ring_window_min}m",
+              cfg.window_buckets(cfg.ring_window_min))
+    if len(_LAYOUTS) > 64:
+        _LAYOUTS.clear()
+    _LAYOUTS[id(cfg)] = (cfg, layout)
+    return layout
+
+
+def cell_vector(cell: str, as_of_ms: int, raw: ReadResult, cfg: EngineConfig,
+                ring_memo: dict[str, int] | None = None) -> dict[str, object]:
+    """The cell family for one cell at T. ``raw`` must hold the cell's ring buckets and presence.
+    ``ring_memo``: a dict shared by the cells of one read (at one T), so that a neighbour in
+    several rings is summed once."""
+    hi = as_of_ms // cfg.bucket_ms
+    lengths, names, ring_name, rw = _cell_layout(cfg)
+    cells = raw.cells
+    sums = _window_sums(cells.get(cell, {}), hi, lengths)
+    out: dict[str, object] = {name: sums[i][col] for name, i, col in names}
     vac, occ = raw.presence.get(cell, (0, 0))
     out["cell_vacant_now"] = vac
     out["cell_occupied_now"] = occ
     ring = ring_of(cell)
-    rw = [cfg.window_buckets(cfg.ring_window_min)]
-    out[f"cell_ring_pickups_{cfg.ring_window_min}m"] = sum(
-        _window_sums(raw.cells.get(c, {}), hi, rw)[0][1] for c in ring
-    )
+    ring_pickups = 0
+    for c in ring:
+        buckets = cells.get(c)
+        if not buckets:  # a cell without counts adds nothing
+            continue
+        if ring_memo is None:
+            ring_pickups += _window_sums(buckets, hi, (rw,))[0][1]
+            continue
+        n = ring_memo.get(c)
+        if n is None:
+            n = ring_memo[c] = _window_sums(buckets, hi, (rw,))[0][1]
+        ring_pickups += n
+    out[ring_name] = ring_pickups
     out["cell_ring_vacant_now"] = sum(raw.presence.get(c, (0, 0))[0] for c in ring)
     return out
 

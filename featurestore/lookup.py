@@ -84,9 +84,10 @@ class Lookup:
             routes=list(dict.fromkeys(keys)), day_lo=dlo, day_hi=dhi, as_of_ms=as_of_ms,
             with_progress=with_progress,
         ))
+        ring_memo: dict[str, int] = {}  # a neighbour's ring pickups, summed once per read
         return (
             [vehicle_vector(raw.vehicles.get(v), as_of_ms, cfg) for v in vehicles],
-            [cell_vector(c, as_of_ms, raw, cfg) for c in cells],
+            [cell_vector(c, as_of_ms, raw, cfg, ring_memo) for c in cells],
             [{**route_vector(k, raw), "_hour": k[2]} for k in keys],
             raw,
         )
