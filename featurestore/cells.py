@@ -6,10 +6,29 @@ from functools import lru_cache
 
 import h3
 
+try:  # the compiled functions behind h3.latlng_to_cell (which is int_to_str of the first)
+    from h3._cy import int_to_str as _int_to_str
+    from h3._cy import latlng_to_cell as _latlng_to_int
+except ImportError:  # pragma: no cover - another layout of the h3 package
+    from h3 import int_to_str as _int_to_str
+    from h3.api.basic_int import latlng_to_cell as _latlng_to_int
+
+_CELL_TEXT: dict[int, str] = {}  # cell number -> its hex string (one shared string per cell)
+_CELL_TEXT_MAX = 1 << 18
+
 
 def cell_of(lat: float, lon: float, resolution: int) -> str:
-    """The H3 cell (hex string) containing the point at the given resolution."""
-    return h3.latlng_to_cell(lat, lon, resolution)
+    """The H3 cell (hex string) containing the point at the given resolution.
+
+    Equal to ``h3.latlng_to_cell``; the cell's text is cached by its number, which halves
+    the cost per fix and lets every fix of a cell share one string."""
+    n = _latlng_to_int(lat, lon, resolution)
+    text = _CELL_TEXT.get(n)
+    if text is None:
+        if len(_CELL_TEXT) >= _CELL_TEXT_MAX:
+            _CELL_TEXT.clear()
+        text = _CELL_TEXT[n] = _int_to_str(n)
+    return text
 
 
 @lru_cache(maxsize=65_536)

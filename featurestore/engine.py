@@ -9,6 +9,7 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
+from operator import attrgetter
 
 from featurestore.config import EngineConfig
 from featurestore.schema import DUPLICATE, FROM_FUTURE, TOO_LATE, Fix, Rejection, row_raw
@@ -73,6 +74,9 @@ class EngineStats:
         }
 
 
+_vehicle_id = attrgetter("vehicle_id")
+
+
 def _fix_raw(fix: Fix) -> bytes:
     return row_raw(fix.to_record())
 
@@ -104,6 +108,7 @@ class Engine:
         raws: Mapping[int, bytes] | None = None,
         spans: Mapping[str, SourceSpan] | None = None,
         until: Callable[[TripEvent], bool] | None = None,
+        start: int = 0,
     ) -> BatchResult:
         """Process one batch in order. ``raws`` maps batch index -> raw bytes for dead letters;
         ``spans`` the source partitions' offsets the batch covers (stored with its state, in
@@ -111,13 +116,17 @@ class Engine:
 
         With ``until``, processing stops once a trip event satisfies it and every following
         message of the same arrival time is done; ``BatchResult.consumed`` says how many
-        messages were taken (the caller feeds the rest again).
+        messages were taken (the caller feeds the rest again, or passes the same list with
+        ``start`` moved on: processing begins at index ``start``, and the indexes in
+        ``rejected`` and ``raws`` are always positions in ``items``).
         """
         cfg = self.config
-        batch = list(items)
+        batch = items if type(items) is list else list(items)
         result = BatchResult()
         stats = self.stats
-        ids = {f.vehicle_id for f in batch if isinstance(f, Fix)}
+        # the vehicles named in the batch (a rejection's too: loading it changes nothing)
+        ids = set(map(_vehicle_id, batch[start:] if start else batch))
+        ids.discard(None)
         loaded = self.store.load_vehicles(ids)
         current: dict[str, VehicleState | None] = dict(loaded)
         delta = Delta()
@@ -129,20 +138,22 @@ class Engine:
         vehicles = delta.vehicles
         rejected = result.rejected
         history = self.history_ms > 0
-        for i, item in enumerate(batch):
-            if stop_at is not None and item.arrival_ms is not None and item.arrival_ms > stop_at:
+        for i in range(start, len(batch)):
+            item = batch[i]
+            arrival = item.arrival_ms
+            if stop_at is not None and arrival is not None and arrival > stop_at:
                 break
-            consumed = i + 1
+            consumed = i + 1 - start
             if type(item) is Rejection:
                 rejected.append((i, item))
                 continue
             fix = item
             vid = fix.vehicle_id
-            if wm is None or fix.arrival_ms > wm:
-                wm = fix.arrival_ms
+            if wm is None or arrival > wm:
+                wm = arrival
             reason = timing_reason(fix, cfg)
             state = current.get(vid)
-            if state is not None and fix.arrival_ms - state.seen_ms > ttl:
+            if state is not None and arrival - state.seen_ms > ttl:
                 state = None  # logically expired: the vehicle starts afresh
             if reason is None and state is not None and fix.event_ms in state.recent:
                 reason = DUPLICATE
@@ -207,9 +218,11 @@ class Engine:
                 )
         if spans:
             delta.spans.update(spans)
-        counts = Counter({"received": consumed, "accepted": accepted, "in_order": in_order,
-                          "out_of_order": accepted - in_order})
-        counts.update(f"rejected:{rej.reason}" for _, rej in rejected)
+        counts = {"received": consumed, "accepted": accepted, "in_order": in_order,
+                  "out_of_order": accepted - in_order}
+        for _, rej in rejected:
+            key = f"rejected:{rej.reason}"
+            counts[key] = counts.get(key, 0) + 1
         delta.counts = {k: v for k, v in counts.items() if v}
         if wm is not None:
             delta.watermark_ms = wm

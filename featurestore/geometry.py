@@ -35,24 +35,36 @@ def initial_bearing_deg(lat1: float, lon1: float, lat2: float, lon2: float) -> f
     return 0.0 if deg == 360.0 else deg
 
 
+# math.radians(x) is x * (pi / 180) and math.degrees(x) is x * (180 / pi) in CPython
+# (Modules/mathmodule.c), so these products give identical results without the calls.
+_RAD = math.pi / 180.0
+_DEG = 180.0 / math.pi
+_sin = math.sin
+_cos = math.cos
+_asin = math.asin
+_sqrt = math.sqrt
+_atan2 = math.atan2
+
+
 def step_m_and_bearing(
     lat1: float, lon1: float, lat2: float, lon2: float, radius_m: float = EARTH_RADIUS_M
 ) -> tuple[float, float]:
     """``haversine_m`` and ``initial_bearing_deg`` of one step, sharing the trigonometry.
 
-    Gives results identical to calling the two functions separately.
+    Gives results identical to calling the two functions separately (the engine calls it
+    once per in-order fix, so it avoids attribute look-ups and calls).
     """
-    p1 = math.radians(lat1)
-    p2 = math.radians(lat2)
+    p1 = lat1 * _RAD
+    p2 = lat2 * _RAD
     dp = p2 - p1
-    dl = math.radians(lon2 - lon1)
-    c1 = math.cos(p1)
-    c2 = math.cos(p2)
-    a = math.sin(dp / 2) ** 2 + c1 * c2 * math.sin(dl / 2) ** 2
-    dist = 2.0 * radius_m * math.asin(min(1.0, math.sqrt(a)))
-    y = math.sin(dl) * c2
-    x = c1 * math.sin(p2) - math.sin(p1) * c2 * math.cos(dl)
-    deg = math.degrees(math.atan2(y, x)) % 360.0
+    dl = (lon2 - lon1) * _RAD
+    c1 = _cos(p1)
+    c2 = _cos(p2)
+    a = _sin(dp / 2) ** 2 + c1 * c2 * _sin(dl / 2) ** 2
+    dist = 2.0 * radius_m * _asin(min(1.0, _sqrt(a)))
+    y = _sin(dl) * c2
+    x = c1 * _sin(p2) - _sin(p1) * c2 * _cos(dl)
+    deg = (_atan2(y, x) * _DEG) % 360.0
     return dist, (0.0 if deg == 360.0 else deg)
 
 

@@ -6,6 +6,7 @@ shared counters; the engine gathers those per batch and hands them to a store.
 
 from __future__ import annotations
 
+from bisect import bisect_left
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from functools import lru_cache
@@ -66,38 +67,40 @@ def local_hour(ts_ms: int, tz: str) -> int:
 def pruned_recent(recent: tuple[int, ...], event_ms: int, horizon_ms: int) -> tuple[int, ...]:
     """The sorted duplicate-detection set after adding a new ``event_ms``, without entries
     before the horizon."""
-    i = 0
-    n = len(recent)
-    while i < n and recent[i] < horizon_ms:
-        i += 1
-    kept = recent[i:]
+    kept = recent[bisect_left(recent, horizon_ms):] if recent and recent[0] < horizon_ms else recent
     if not kept or event_ms > kept[-1]:
         return (*kept, event_ms)
     return tuple(sorted((*kept, event_ms)))
 
 
+_new = tuple.__new__  # a named tuple from its values in field order, without keyword parsing
+
+
 def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[VehicleState, Effect]:
     """Apply an accepted, non-duplicate fix. ``state`` is None for an unknown vehicle."""
-    cell = cell_of(fix.lat, fix.lon, cfg.cell_resolution)
-    bucket = fix.event_ms // cfg.bucket_ms
-    seen_ms = fix.arrival_ms if state is None else max(state.seen_ms, fix.arrival_ms)
-    horizon = seen_ms - cfg.max_delay_ms
-    recent = pruned_recent(() if state is None else state.recent, fix.event_ms, horizon)
+    lat = fix.lat
+    lon = fix.lon
+    event_ms = fix.event_ms
+    arrival_ms = fix.arrival_ms
+    cell = cell_of(lat, lon, cfg.cell_resolution)
+    bucket = event_ms // cfg.bucket_ms
 
     if state is None:
-        new = VehicleState(
-            vehicle_id=fix.vehicle_id, event_ms=fix.event_ms, arrival_ms=fix.arrival_ms,
-            seen_ms=seen_ms, lat=fix.lat, lon=fix.lon, cell=cell, status=fix.status,
-            speed_mps=0.0, bearings=(), recent=recent, trip=None,
-        )
-        return new, Effect(cell, bucket, True)
+        new = _new(VehicleState, (
+            fix.vehicle_id, event_ms, arrival_ms, arrival_ms, lat, lon, cell, fix.status, 0.0,
+            (), pruned_recent((), event_ms, arrival_ms - cfg.max_delay_ms), None))
+        return new, _new(Effect, (cell, bucket, True, False, False, 0, None))
 
-    if fix.event_ms <= state.event_ms:  # out of order: counts only in the cell's fixes
-        return state._replace(seen_ms=seen_ms, recent=recent), Effect(cell, bucket, False)
+    seen_ms = state.seen_ms if state.seen_ms >= arrival_ms else arrival_ms
+    recent = pruned_recent(state.recent, event_ms, seen_ms - cfg.max_delay_ms)
+    if event_ms <= state.event_ms:  # out of order: counts only in the cell's fixes
+        # the state as it was, with only seen_ms and recent changed
+        return _new(VehicleState, (*state[:3], seen_ms, *state[4:10], recent, state.trip)), \
+            _new(Effect, (cell, bucket, False, False, False, 0, None))
 
-    step_m, step_bearing = step_m_and_bearing(state.lat, state.lon, fix.lat, fix.lon,
+    step_m, step_bearing = step_m_and_bearing(state.lat, state.lon, lat, lon,
                                               cfg.earth_radius_m)
-    speed = step_m / ((fix.event_ms - state.event_ms) / 1000.0)
+    speed = step_m / ((event_ms - state.event_ms) / 1000.0)
     bearing = step_bearing if step_m >= cfg.moving_step_m else None
     bearings = state.bearings
     if bearing is not None:
@@ -105,16 +108,16 @@ def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[Ve
 
     prev, now = state.status, fix.status
     pickup = prev == "vacant" and now == "occupied"
-    dropoff = prev == "occupied" and now in ("vacant", "offline")
+    dropoff = prev == "occupied" and (now == "vacant" or now == "offline")
     trip = state.trip
     trip_fix = 0
     completed = None
     if pickup:
         trip = TripState(
-            trip_id=fix.trip_id or f"{fix.vehicle_id}:{fix.event_ms}",
-            pickup_event_ms=fix.event_ms, pickup_arrival_ms=fix.arrival_ms,
-            pickup_lat=fix.lat, pickup_lon=fix.lon, start_cell=cell,
-            origin_route_cell=cell_of(fix.lat, fix.lon, cfg.route_resolution),
+            trip_id=fix.trip_id or f"{fix.vehicle_id}:{event_ms}",
+            pickup_event_ms=event_ms, pickup_arrival_ms=arrival_ms,
+            pickup_lat=lat, pickup_lon=lon, start_cell=cell,
+            origin_route_cell=cell_of(lat, lon, cfg.route_resolution),
             distance_m=0.0, fixes=1, initial_bearings=(),
         )
         trip_fix = 1
@@ -123,12 +126,12 @@ def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[Ve
             completed = CompletedTrip(
                 vehicle_id=fix.vehicle_id, trip_id=trip.trip_id,
                 pickup_event_ms=trip.pickup_event_ms, pickup_arrival_ms=trip.pickup_arrival_ms,
-                dropoff_event_ms=fix.event_ms, dropoff_arrival_ms=fix.arrival_ms,
+                dropoff_event_ms=event_ms, dropoff_arrival_ms=arrival_ms,
                 start_cell=trip.start_cell, dest_cell=cell,
                 origin_route_cell=trip.origin_route_cell,
-                dest_route_cell=cell_of(fix.lat, fix.lon, cfg.route_resolution),
+                dest_route_cell=cell_of(lat, lon, cfg.route_resolution),
                 pickup_hour=local_hour(trip.pickup_event_ms, cfg.city_tz),
-                duration_ms=fix.event_ms - trip.pickup_event_ms,
+                duration_ms=event_ms - trip.pickup_event_ms,
                 distance_m=trip.distance_m + step_m, fixes=trip.fixes + 1,
             )
         trip = None
@@ -137,13 +140,11 @@ def advance(state: VehicleState | None, fix: Fix, cfg: EngineConfig) -> tuple[Ve
         initial = trip.initial_bearings
         if bearing is not None and fixes <= cfg.trip_initial_fixes:
             initial = (*initial, bearing)
-        trip = trip._replace(distance_m=trip.distance_m + step_m, fixes=fixes,
-                             initial_bearings=initial)
+        # the trip with distance, fixes and initial bearings changed
+        trip = _new(TripState, (*trip[:7], trip.distance_m + step_m, fixes, initial))
         trip_fix = fixes
 
-    new = VehicleState(
-        vehicle_id=fix.vehicle_id, event_ms=fix.event_ms, arrival_ms=fix.arrival_ms,
-        seen_ms=seen_ms, lat=fix.lat, lon=fix.lon, cell=cell, status=now, speed_mps=speed,
-        bearings=bearings, recent=recent, trip=trip,
-    )
-    return new, Effect(cell, bucket, True, pickup, dropoff, trip_fix, completed)
+    new = _new(VehicleState, (
+        fix.vehicle_id, event_ms, arrival_ms, seen_ms, lat, lon, cell, now, speed, bearings,
+        recent, trip))
+    return new, _new(Effect, (cell, bucket, True, pickup, dropoff, trip_fix, completed))

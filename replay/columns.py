@@ -35,6 +35,37 @@ from featurestore.schema import (
 )
 
 _STATUS_SET = pa.array(STATUSES, pa.string())
+_FIX_FIELDS = ("vehicle_id", "event_ms", "lat", "lon", "status", "arrival_ms", "speed_mps",
+               "trip_id")
+
+
+def _fix_maker() -> Any:
+    """A function of the eight field values giving the same Fix as ``Fix(...)``, about twice
+    as fast: it sets the slots through their descriptors instead of the frozen dataclass's
+    ``object.__setattr__`` calls (falls back to ``Fix`` if Fix is not that shape)."""
+    slots = getattr(Fix, "__slots__", ())
+    if tuple(slots) != _FIX_FIELDS or tuple(Fix.__dataclass_fields__) != _FIX_FIELDS:
+        return Fix
+    s0, s1, s2, s3, s4, s5, s6, s7 = (Fix.__dict__[n].__set__ for n in _FIX_FIELDS)
+    new = object.__new__
+
+    def make(vid: Any, ev: Any, lat: Any, lon: Any, st: Any, arr: Any, sp: Any, trip: Any
+             ) -> Fix:
+        f = new(Fix)
+        s0(f, vid)
+        s1(f, ev)
+        s2(f, lat)
+        s3(f, lon)
+        s4(f, st)
+        s5(f, arr)
+        s6(f, sp)
+        s7(f, trip)
+        return f
+
+    return make
+
+
+make_fix = _fix_maker()
 
 
 def _float_values(arr: pa.Array | None, n: int) -> tuple[np.ndarray, np.ndarray] | None:
@@ -170,7 +201,7 @@ def decode_batch(batch: pa.RecordBatch, delay_ms: int | None = None) -> list[Fix
     trips = by_name.get("trip_id", none)
     evs = conv["event_ms"].tolist()
     arrs = conv["arrival_ms"].tolist()
-    out: list[Fix | Rejection] = list(map(Fix, vids, evs, lats, lons, statuses, arrs, speeds,
+    out: list[Fix | Rejection] = list(map(make_fix, vids, evs, lats, lons, statuses, arrs, speeds,
                                           trips))
     for i in np.flatnonzero(~ok).tolist():  # the rest: the per-row schema path decides
         out[i] = slow_row({k: v[i] for k, v in by_name.items()}, delay_ms)

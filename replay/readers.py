@@ -17,10 +17,9 @@ import csv
 import datetime as dt
 import io
 from collections.abc import Iterator, Mapping, Sequence
-from dataclasses import dataclass
 from itertools import repeat
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import orjson
 import pyarrow as pa
@@ -48,9 +47,9 @@ class InputError(ValueError):
     """An input file cannot be read as recorded fixes."""
 
 
-@dataclass(frozen=True, slots=True)
-class Item:
-    """One row of an input: where it came from and what it decoded to."""
+class Item(NamedTuple):
+    """One row of an input: where it came from and what it decoded to (a named tuple: one
+    is made per row, and a tuple is the cheapest record to make)."""
 
     source: int  # index of the input file
     row: int  # 0-based row (line) number in that file
@@ -60,6 +59,9 @@ class Item:
     @property
     def arrival_ms(self) -> int | None:
         return self.value.arrival_ms
+
+
+_make_item = Item._make  # Item from (source, row, value, raw)
 
 
 def detect_format(path: str | Path) -> str:
@@ -123,8 +125,10 @@ def iter_parquet(path: Path, source: int, delay_ms: int | None, batch_rows: int
     row = 0
     for batch in pf.iter_batches(batch_size=batch_rows):
         values = decode_batch(batch, delay_ms)  # the schema's answer for each row, columnar
-        yield from map(Item, repeat(source, len(values)), range(row, row + len(values)), values)
-        row += len(values)
+        n = len(values)
+        yield from map(_make_item, zip(repeat(source, n), range(row, row + n), values,
+                                       repeat(None, n), strict=True))
+        row += n
 
 
 _TAPE_BATCH_ROWS = 8192  # a tape is many files merged at once: keep each one's batch small

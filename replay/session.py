@@ -10,6 +10,7 @@ import heapq
 import itertools
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
+from itertools import islice
 
 from featurestore.config import EngineConfig
 from featurestore.engine import BatchResult, Engine, TripEvent
@@ -70,10 +71,11 @@ class ReplaySession:
                 query.answer(v, c, r)
 
     def _apply(self, batch: list[Item]) -> None:
-        while batch:
-            raws = {i: it.raw for i, it in enumerate(batch) if it.raw is not None}
-            result = self.engine.process([it.value for it in batch], raws=raws,
-                                         until=self.wants_event)
+        values = [it.value for it in batch]
+        raws = {i: it.raw for i, it in enumerate(batch) if it.raw is not None}
+        start = 0
+        while start < len(batch):
+            result = self.engine.process(values, raws=raws, until=self.wants_event, start=start)
             for idx, rej in result.rejected:
                 if self.dead_letters is not None:
                     self.dead_letters(batch[idx], rej)
@@ -82,8 +84,9 @@ class ReplaySession:
                     self.on_trip_event(ev)
             if self.on_batch is not None:
                 self.on_batch(result)
-            batch = batch[result.consumed:]
-            nxt = next((it.arrival_ms for it in batch if it.arrival_ms is not None), None)
+            start += result.consumed
+            nxt = next((it.arrival_ms for it in islice(batch, start, None)
+                        if it.arrival_ms is not None), None)
             if nxt is not None:
                 # Stopped at a trip milestone: answer queries due before the next arrival.
                 self._answer_until(nxt)
