@@ -257,6 +257,8 @@ def _ordered(vector: Mapping[str, object], kind: str, names: tuple[str, ...]
              ) -> dict[str, object]:
     """A vector with its kind, its fields in the order of its model (``names``: the model's
     fields after ``kind``); NaN stays NaN, which orjson writes as null."""
+    if tuple(vector) == names:  # the feature functions build them in catalog order
+        return {"kind": kind, **vector}
     out: dict[str, object] = {"kind": kind}
     for k in names:
         out[k] = vector[k]
