@@ -11,9 +11,11 @@ keys and one route's keys each share a Redis Cluster slot):
 =============================  ======  ==========================================================
 ``P:v:{vid}``                  string  the vehicle's state (JSON)
 ``P:vl:{vid}``                 zset    history: the state before each accepted fix, by arrival
+                                       (grouped per batch, below)
 ``P:c:{cell}:BLOCK``           hash    counters ``f<bucket>``, ``p<bucket>``, ``d<bucket>`` of
                                        one block of buckets (block = longest window)
 ``P:cl:{cell}``                zset    history: each fix's counter increments, by arrival
+                                       (grouped per batch, below)
 ``P:pv:{cell}``, ``P:po:{cell}`` zset  presence intervals of vacant / occupied vehicles
 ``P:r:{o.d}:HOUR``             hash    route sums ``n<day>``, ``s<day>``, ``q<day>``
 ``P:rl:{o.d}:HOUR``            zset    history: each completed trip, by arrival
@@ -23,6 +25,15 @@ keys and one route's keys each share a Redis Cluster slot):
 ``P:meta``                     hash    ``wm``: the watermark (latest arrival applied);
                                        ``history_ms``: the history the writers keep
 =============================  ======  ==========================================================
+
+The vehicle and cell logs hold one member per key and batch: the batch id, then for each
+fix of the batch, in the order applied, GROUP (0x1D) and ``arrival|state-before`` (vehicle)
+or ``arrival|bucket|f|p|d`` (cell), scored by the group's latest arrival. A read as of T
+takes the groups scored after T and, inside them, the entries that arrived after T (for a
+vehicle: the first one, in the first group). One member per key and batch instead of one
+per fix keeps both the apply script and the memory cheap when a batch holds many fixes of
+a vehicle or a cell. A vehicle's fixes are applied in arrival order (one partition, record
+timestamps that do not decrease: the assumption ``known_at`` makes too).
 
 Presence is kept as intervals so that it can be read as of an earlier moment: member
 ``vid|event_ms|arrival_ms`` (the vehicle's latest in-order fix and when it became known) with
@@ -52,6 +63,7 @@ from featurestore.transitions import DAY_MS
 
 PRESENCE_STATUSES = {"vacant": "pv", "occupied": "po"}  # offline vehicles are never counted
 
+GROUP = "\x1d"  # between the entries of a log group: never in JSON text, ids or numbers
 ZSET_CHUNK = 1000  # members per coalesced ZADD/ZREM (Lua's unpack has a limit near 8000 values)
 Op = tuple[str, ...]  # an operation of the apply script: opcode and string arguments
 Command = tuple[str | int | float, ...]
@@ -297,15 +309,35 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
 
     if hist:
         log_ttl = layout.log_ttl_s
-        for i, (arr, vid, before) in enumerate(delta.vehicle_log):
+        # one member per key and batch (a group): the batch id, then per fix GS + its entry;
+        # scored by the group's latest arrival (see the module docstring)
+        vgroups: dict[str, list[str]] = {}
+        vlast: dict[str, int] = {}
+        for arr, vid, before in delta.vehicle_log:
+            g = vgroups.get(vid)
+            if g is None:
+                g = vgroups[vid] = [batch_id]
+                vlast[vid] = arr
+            elif arr > vlast[vid]:
+                vlast[vid] = arr
+            g.append(f"{arr}|{_state_json(before, with_recent=False)}")
+        for vid, g in vgroups.items():
             key = layout.vehicle_log(vid)
-            zadd.setdefault(key, []).extend(
-                (str(arr), f"{arr}|{batch_id}.{i}|{_state_json(before, with_recent=False)}"))
+            zadd.setdefault(key, []).extend((str(vlast[vid]), GROUP.join(g)))
             ttl[key] = log_ttl
-        for i, (arr, cell, bucket, f, p, d) in enumerate(delta.cell_log):
+        cgroups: dict[str, list[str]] = {}
+        clast: dict[str, int] = {}
+        for arr, cell, bucket, f, p, d in delta.cell_log:
+            g = cgroups.get(cell)
+            if g is None:
+                g = cgroups[cell] = [batch_id]
+                clast[cell] = arr
+            elif arr > clast[cell]:
+                clast[cell] = arr
+            g.append(f"{arr}|{bucket}|{f}|{p}|{d}")
+        for cell, g in cgroups.items():
             key = layout.cell_log(cell)
-            zadd.setdefault(key, []).extend(
-                (str(arr), f"{arr}|{batch_id}.{i}|{bucket}|{f}|{p}|{d}"))
+            zadd.setdefault(key, []).extend((str(clast[cell]), GROUP.join(g)))
             ttl[key] = log_ttl
         for i, (arr, o, dd, h, day, dur) in enumerate(delta.route_log):
             key = layout.route_log((o, dd, h))

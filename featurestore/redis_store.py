@@ -116,6 +116,7 @@ return ops
 READ_LUA = """
 local unpack = table.unpack or unpack
 local find, sub, byte, match = string.find, string.sub, string.byte, string.match
+local gmatch = string.gmatch
 local concat = table.concat
 local t = tonumber(ARGV[1])
 local after = '(' .. ARGV[1]
@@ -146,10 +147,18 @@ while s <= n do
     local st = nil
     if a[3] ~= '' then
       local log = redis.call('ZRANGEBYSCORE', a[3], after, '+inf', 'LIMIT', 0, 1)
-      if log[1] then  -- the state before the first change after T is the state at T
-        local p1 = find(log[1], '|', 1, true)
-        local p2 = find(log[1], '|', p1 + 1, true)
-        st = sub(log[1], p2 + 1)
+      -- the state before the first change after T is the state at T: the first group
+      -- scored after T holds it (batch id, then GS arrival|state per fix, in order)
+      local g = log[1]
+      local p = g and find(g, '\\29', 1, true)
+      while p do
+        local bar = find(g, '|', p + 1, true)
+        local nxt = find(g, '\\29', bar + 1, true)
+        if tonumber(sub(g, p + 1, bar - 1)) > t then
+          st = sub(g, bar + 1, (nxt or (#g + 1)) - 1)
+          break
+        end
+        p = nxt
       end
     end
     if st == nil then st = redis.call('GET', a[2]) or '' end
@@ -186,14 +195,15 @@ while s <= n do
     end
     if a[4] ~= '' and #order > 0 then
       local log = redis.call('ZRANGEBYSCORE', a[4], after, '+inf')
-      for j = 1, #log do
-        local b, f, pk, d = match(log[j], '^[^|]*|[^|]*|([^|]*)|([^|]*)|([^|]*)|([^|]*)$')
-        b = tonumber(b)
-        local row = got[b]
-        if row and b >= lo and b <= hi then
-          row[1] = tostring(tonumber(row[1]) - tonumber(f))
-          row[2] = tostring(tonumber(row[2]) - tonumber(pk))
-          row[3] = tostring(tonumber(row[3]) - tonumber(d))
+      for j = 1, #log do  -- groups scored after T: their entries that arrived after T
+        for arr, b, f, pk, d in gmatch(log[j], '\\29(%d+)|(%d+)|(%d+)|(%d+)|(%d+)') do
+          b = tonumber(b)
+          local row = got[b]
+          if row and b >= lo and b <= hi and tonumber(arr) > t then
+            row[1] = tostring(tonumber(row[1]) - tonumber(f))
+            row[2] = tostring(tonumber(row[2]) - tonumber(pk))
+            row[3] = tostring(tonumber(row[3]) - tonumber(d))
+          end
         end
       end
     end

@@ -72,7 +72,7 @@ def test_history_logs_are_trimmed_to_the_history(redis_url: str, fixes: list[Fix
     # Expected, computed independently: each cell's log keeps the entries that arrived at or
     # after (watermark of the last batch that wrote the cell) - history.
     last_wm: dict[str, int] = {}
-    per_cell: dict[str, list[int]] = {}
+    per_cell: dict[str, dict[int, list[int]]] = {}
     for i in range(0, len(fixes), 500):
         batch = fixes[i:i + 500]
         wm = max(f.arrival_ms for f in batch)
@@ -81,10 +81,13 @@ def test_history_logs_are_trimmed_to_the_history(redis_url: str, fixes: list[Fix
                 continue
             cell = h3.latlng_to_cell(f.lat, f.lon, 8)
             last_wm[cell] = wm
-            per_cell.setdefault(cell, []).append(f.arrival_ms)
-    want = {c: sum(1 for a in arrs if a >= last_wm[c] - HISTORY_MS)
-            for c, arrs in per_cell.items()}
-    got = {k.decode().split("{")[1].rstrip("}"): store.client.zcard(k)
+            groups = per_cell.setdefault(cell, {})
+            groups.setdefault(i, []).append(f.arrival_ms)
+    # a batch's entries of one cell form one group, kept while its latest arrival is
+    want = {c: sum(len(arrs) for arrs in groups.values() if max(arrs) >= last_wm[c] - HISTORY_MS)
+            for c, groups in per_cell.items()}
+    got = {k.decode().split("{")[1].rstrip("}"):
+           sum(m.count(b"\x1d") for m in store.client.zrange(k, 0, -1))
            for k in store.client.scan_iter("t:cl:*", count=1000)}
     assert got == {c: n for c, n in want.items() if n}
     assert sum(got.values()) < len(fixes) / 2  # most of the 1.5 h was trimmed away
@@ -161,7 +164,7 @@ def test_one_batch_writes_thousands_of_members_of_one_key(redis_url: str) -> Non
     from featurestore.redis_layout import ZSET_CHUNK
 
     t0 = 1_780_300_000_000
-    batch = [Fix(vehicle_id="veh-1", event_ms=t0 + 2000 * i, lat=-33.2 + 1e-4 * i, lon=-20.6,
+    batch = [Fix(vehicle_id="veh-1", event_ms=t0 + 2000 * i, lat=-33.2 + 1e-7 * i, lon=-20.6,
                  status="vacant" if (i // 100) % 2 else "occupied",
                  arrival_ms=t0 + 2000 * i + 500) for i in range(2500)]
     redis_store = RedisStore.from_url(redis_url, history_ms=10**8, namespace="chunk")
@@ -169,9 +172,20 @@ def test_one_batch_writes_thousands_of_members_of_one_key(redis_url: str) -> Non
     Engine(redis_store).process(batch)
     Engine(mem).process(batch)
     assert 2500 > 2 * ZSET_CHUNK
-    assert redis_store.client.zcard("chunk:vl:{veh-1}") == 2500
+    assert redis_store.client.zcard("chunk:vl:{veh-1}") == 1  # one group: the batch
+    assert [m.count(b"\x1d") for m in redis_store.client.zrange("chunk:vl:{veh-1}", 0, -1)
+            ] == [2500]
+    # presence: one interval per fix (a new event each time), all in one cell: 1,300
+    # occupied and 1,200 vacant ones, each key written in chunks
+    lay = redis_store.layout
+    cell = redis_store.load_vehicles(["veh-1"])["veh-1"].cell
+    assert [redis_store.client.zcard(lay.presence(cell, status))
+            for status in ("occupied", "vacant")] == [1300, 1200]
     for k in (0, 999, 1000, 1001, 2001, 2499):
         at = batch[k].arrival_ms
         assert Lookup(redis_store).vehicle("veh-1", at) == Lookup(mem).vehicle("veh-1", at)
-        cell = redis_store.load_vehicles(["veh-1"])["veh-1"].cell
         assert Lookup(redis_store).cell(cell, at) == Lookup(mem).cell(cell, at)
+        # the 5-minute window: the as-of minute and the 4 before it, fixes known by then
+        want = sum(1 for f in batch[:k + 1] if f.event_ms // 60_000 >= at // 60_000 - 4)
+        assert Lookup(redis_store).cell(cell, at)["cell_fixes_5m"] == want
+        assert want == 1 if k == 0 else want > 100
