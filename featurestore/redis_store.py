@@ -121,6 +121,10 @@ local concat = table.concat
 local t = tonumber(ARGV[1])
 local after = '(' .. ARGV[1]
 local req = ARGV[2]
+-- Every log entry is scored by an arrival the watermark (in the hash ARGV[3]) has passed, so
+-- a read at or after the watermark, the live "now", needs no log.
+local wm = redis.call('HGET', ARGV[3], 'wm')
+local logs = wm and t < tonumber(wm)
 local COL = {[102] = 1, [112] = 2, [100] = 3}  -- counter field prefix f, p, d -> column
 local BUCKET = {}  -- counter field name -> its bucket (a number)
 local BTEXT = {}  -- bucket -> its text, as in the field names
@@ -145,7 +149,7 @@ while s <= n do
   local kind = a[1]
   if kind == 'V' then
     local st = nil
-    if a[3] ~= '' then
+    if logs and a[3] ~= '' then
       local log = redis.call('ZRANGEBYSCORE', a[3], after, '+inf', 'LIMIT', 0, 1)
       -- the state before the first change after T is the state at T: the first group
       -- scored after T holds it (batch id, then GS arrival|state per fix, in order)
@@ -193,7 +197,7 @@ while s <= n do
         end
       end
     end
-    if a[4] ~= '' and #order > 0 then
+    if logs and a[4] ~= '' and #order > 0 then
       local log = redis.call('ZRANGEBYSCORE', a[4], after, '+inf')
       for j = 1, #log do  -- groups scored after T: their entries that arrived after T
         for arr, b, f, pk, d in gmatch(log[j], '\\29(%d+)|(%d+)|(%d+)|(%d+)|(%d+)') do
@@ -257,7 +261,7 @@ while s <= n do
       end
     end
     local r = concat(sums, '\\31')
-    if a[3] ~= '' then
+    if logs and a[3] ~= '' then
       local log = redis.call('ZRANGEBYSCORE', a[3], after, '+inf')
       if #log > 0 then
         local items = {}
@@ -364,7 +368,7 @@ class RedisStore:
             t = self.watermark_ms() or 0
         plan = read_plan(request, self.layout, t,
                          with_logs=True if self.history_from_state else None)
-        raw = self._read(keys=[], args=[t, plan.request])
+        raw = self._read(keys=[], args=[t, plan.request, self.layout.meta])
         out = plan.parse(raw.split(b"\x1e"))
         wm = out.watermark_ms
         if wm is not None and t < wm:
