@@ -31,7 +31,7 @@ from typing import Any, Protocol
 
 from featurestore.config import EngineConfig
 from featurestore.engine import Engine
-from featurestore.schema import Fix, Rejection, decode_json, decode_record
+from featurestore.schema import Fix, Rejection, decode_records
 from featurestore.state import VehicleState
 from featurestore.store import Delta, SourceSpan, StaleBatchError, StateStore
 from ingest.dead_letters import DeadLetter, DeadLetterError, DeadLetterSink
@@ -249,14 +249,10 @@ class ConsumerLoop:
             if p in offsets:
                 self.stats.applied[p] = offsets[p]
 
-    def _decode(self, r: SourceRecord) -> Fix | Rejection:
-        if self.source.keyed:
-            return decode_record(r.key, r.value, r.timestamp_ms)
-        return decode_json(r.value, r.timestamp_ms)
-
     def _apply(self, records: list[SourceRecord]) -> int:
         t0 = time.perf_counter()
-        decoded = [self._decode(r) for r in records]
+        # decode_record per record (decode_json for unkeyed sources), in one call
+        decoded = decode_records(records, keyed=self.source.keyed)
         spans = spans_of(records, decoded)
         self._held.delta = None
         result = self.engine.process(decoded, raws={i: r.value for i, r in enumerate(records)},
