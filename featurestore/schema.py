@@ -196,8 +196,10 @@ def _new_fix(vehicle_id: str, event_ms: int, lat: float, lon: float, status: str
 def _certain(vehicle_id: Any, event_ts: Any, lat: Any, lon: Any, status: Any, arrival_ts: Any,
              speed_mps: Any, trip_id: Any) -> Fix | None:
     """The Fix of these field values if they are certainly valid, else None (not sure)."""
+    known = _known_ids
     try:
-        if type(status) is not str or status not in STATUSES or not _valid_id(vehicle_id):
+        if (type(status) is not str or status not in STATUSES
+                or (vehicle_id not in known and not _valid_id(vehicle_id))):
             return None
         kind = type(lat)
         if not ((kind is float or kind is int) and LAT_MIN <= lat <= LAT_MAX):
@@ -214,14 +216,16 @@ def _certain(vehicle_id: Any, event_ts: Any, lat: Any, lon: Any, status: Any, ar
                 speed_mps = float(speed_mps)
             else:
                 return None
-        if trip_id is not None and not _valid_id(trip_id):
+        if trip_id is not None and trip_id not in known and not _valid_id(trip_id):
             return None
         event_ms = to_epoch_ms(event_ts)
         arrival_ms = to_epoch_ms(arrival_ts)
     except Exception:  # noqa: BLE001 - not sure: the schema decides (or raises) the same way
         return None
-    return _new_fix(vehicle_id, event_ms, float(lat), float(lon), status, arrival_ms,
-                    speed_mps, trip_id)
+    fix = _FixSlots(vehicle_id, event_ms, float(lat), float(lon), status, arrival_ms, speed_mps,
+                    trip_id)
+    fix.__class__ = Fix  # as _new_fix does
+    return fix  # type: ignore[return-value]
 
 
 def _certain_fix(d: dict[str, Any]) -> Fix | None:
