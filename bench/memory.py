@@ -10,7 +10,9 @@ fix interval) while it drives around Port Veyra at 8-12 m/s, alternating vacant 
 Every vehicle reports all the time, so the *active vehicles* are the whole fleet: those that
 reported within the last 15 s (well within the 6 h vehicle expiry). The fixes go through
 ``featurestore.engine.Engine`` on ``featurestore.redis_store.RedisStore`` into a real
-redis-server at full speed, in batches of 2,000 fixes (the consumer's poll size).
+redis-server at full speed, in batches of 500 fixes (``--batch``; the consumer's default
+``--max-poll-records``). The batch size matters with history: the history logs hold one
+member per vehicle and per cell and batch.
 
 What is measured after a fill of ``--minutes`` of event time (default 75: the 15-minute
 history plus the longest window, 60 minutes):
@@ -68,7 +70,7 @@ from featurestore.schema import Fix
 KIB = 1024
 TARGET_BYTES_PER_VEHICLE = 1 * KIB
 SAMPLE_KEYS = 2000  # per family; families with more keys are sampled and scaled
-BATCH = 2000
+BATCH = 500  # the consumer's default max_poll_records
 
 # Port Veyra's land in metres east / north of the central station (ingest.citysim's frame).
 _LAT0, _LON0 = -33.20, -20.60
@@ -305,7 +307,8 @@ class MemoryCase:
 
 
 def fill(url: str, vehicles: int, history_s: int, minutes: float, seed: int = 7,
-         config: EngineConfig | None = None, progress: bool = True) -> MemoryCase:
+         config: EngineConfig | None = None, progress: bool = True,
+         batch_size: int = BATCH) -> MemoryCase:
     """Flush the server, then run ``minutes`` of a steady fleet through the engine into it."""
     import redis
 
@@ -327,10 +330,10 @@ def fill(url: str, vehicles: int, history_s: int, minutes: float, seed: int = 7,
     last_report = t0
     for tick in fleet.fixes(end):
         batch += tick
-        if len(batch) >= BATCH:
-            engine.process(batch)
-            case.fixes += len(batch)
-            batch = []
+        while len(batch) >= batch_size:
+            engine.process(batch[:batch_size])
+            case.fixes += batch_size
+            del batch[:batch_size]
             now = time.perf_counter()
             if progress and now - last_report > 5:
                 last_report = now
@@ -590,6 +593,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--flat-only", action="store_true", help="only the real-time flat check")
     ap.add_argument("--flat-vehicles", type=int, default=1000)
     ap.add_argument("--seed", type=int, default=7)
+    ap.add_argument("--batch", type=int, default=BATCH, help="fixes per engine batch")
     ap.add_argument("--redis-url", default=None,
                     help="an existing redis-server to FLUSH and fill (default: start one)")
     args = ap.parse_args(argv)
@@ -599,7 +603,8 @@ def main(argv: list[str] | None = None) -> None:
         if not args.flat_only:
             for n in args.vehicles or (1000, 10_000):
                 for hist in args.history if args.history is not None else (900, 0):
-                    print(table(fill(url, n, hist, args.minutes, seed=args.seed)), flush=True)
+                    print(table(fill(url, n, hist, args.minutes, seed=args.seed,
+                                     batch_size=args.batch)), flush=True)
         if args.flat_seconds > 0:
             print(flat_table(flat_check(url, args.flat_vehicles, args.flat_seconds,
                                         seed=args.seed)), flush=True)
