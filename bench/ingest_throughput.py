@@ -293,7 +293,7 @@ def run(opts: BenchOptions, env: BenchEnv) -> list[Figure]:
 
             ensure_topic(bootstrap, name, partitions)
 
-        topics: dict[int, tuple[str, dict[str, Any]]] = {}
+        topics: dict[int, tuple[str, str, dict[str, Any]]] = {}
         for per_batch in (BATCH_RECORDS if confluent_available() else (MAIN_BATCH,)):
             topic = f"bench-ingest-{per_batch}-{uuid.uuid4().hex[:6]}"
             create_topic(topic, PARTITIONS)
@@ -302,25 +302,27 @@ def run(opts: BenchOptions, env: BenchEnv) -> list[Figure]:
                 mean = _push_batched(bootstrap, topic, records, per_batch)
                 info = {"producer_mean_records_per_batch": round(mean, 1),
                         **broker_batches(bootstrap, topic, total)}
+                label = f"~{per_batch} records per broker batch"
             else:
                 _push_plain(bootstrap, topic, records)
-                info = {"records_per_batch": "kafka-python's, linger 20 ms, 256 KiB"}
-            _log(f"topic with ~{per_batch} records per batch: {info}")
-            topics[per_batch] = (topic, info)
+                info = broker_batches(bootstrap, topic, total)
+                label = (f"~{info['broker_mean_records_per_batch']:.0f} records per broker "
+                         "batch (kafka-python producer)")
+            _log(f"topic with {label}: {info}")
+            topics[per_batch] = (topic, label, info)
 
         figures: list[Figure] = []
         for client in clients:
-            for per_batch, (topic, info) in topics.items():
+            for per_batch, (topic, label, info) in topics.items():
                 floor = FLOORS[client](bootstrap, topic, total)
-                _log(f"{client}, ~{per_batch}/batch: floor {floor:,.0f}/s")
+                _log(f"{client}, {label}: floor {floor:,.0f}/s")
                 histories = (900.0, 0.0) if per_batch == MAIN_BATCH else (900.0,)
                 for history in histories:
                     rate = consume(client, bootstrap, topic, url, history, total)
-                    _log(f"{client}, ~{per_batch}/batch, history {history:g} s: "
+                    _log(f"{client}, {label}, history {history:g} s: "
                          f"{rate:,.0f}/s ({rate / floor:.2f}x floor)")
                     figures.append(Figure(
-                        "ingest", f"consumer loop ({client}), history {history:g} s, "
-                                  f"~{per_batch} records per broker batch",
+                        "ingest", f"consumer loop ({client}), history {history:g} s, {label}",
                         rate, "fixes/s", floor, f"bare {client} consumer, same topic",
                         target=TARGET, met=_ratio_met(rate, floor),
                         extra={"records": total, "partitions": PARTITIONS,
