@@ -65,22 +65,34 @@ class MemoryStore:
     def apply(self, delta: Delta) -> None:
         check_spans(self._positions, delta.spans)
         self._vehicles.update(delta.vehicles)
+        cells = self._cells
         for (cell, bucket), inc in delta.cells.items():
-            row = self._cells.setdefault(cell, {}).setdefault(bucket, [0, 0, 0])
-            row[0] += inc[0]
-            row[1] += inc[1]
-            row[2] += inc[2]
+            buckets = cells.get(cell)
+            if buckets is None:
+                buckets = cells[cell] = {}
+            row = buckets.get(bucket)
+            if row is None:
+                buckets[bucket] = list(inc)  # a new list: the delta's stays the delta's
+            else:
+                row[0] += inc[0]
+                row[1] += inc[1]
+                row[2] += inc[2]
         for (o, d, h, day), inc in delta.routes.items():
             row = self._routes.setdefault((o, d, h), {}).setdefault(day, [0, 0, 0])
             row[0] += inc[0]
             row[1] += inc[1]
             row[2] += inc[2]
+        presence = self._presence
         for vid, move in delta.presence.items():
             if move.old_cell is not None:
-                old = self._presence.get((move.old_cell, move.old_status or ""))
+                old = presence.get((move.old_cell, move.old_status or ""))
                 if old is not None:
                     old.pop(vid, None)
-            self._presence.setdefault((move.cell, move.status), {})[vid] = move.event_ms
+            key = (move.cell, move.status)
+            at = presence.get(key)
+            if at is None:
+                at = presence[key] = {}
+            at[vid] = move.event_ms
         for part, span in delta.spans.items():
             self._positions[part] = merge_position(self._positions.get(part), span)
         self._counts.update(delta.counts)

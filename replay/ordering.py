@@ -56,28 +56,36 @@ def arrival_order(items: Iterable[Item], run_rows: int = 50_000, force_sort: boo
     run: list[Item] = []
     runs: list[Path] = []
     streaming = not force_sort
-    yielded_max: tuple[int, int, int] | None = None
-    last: tuple[int, int, int] | None = None
+    # Keys are compared by arrival first; the whole (arrival, source, row) key is built only
+    # on a tie (most rows differ in arrival), which orders exactly as comparing the keys.
+    yielded_max: Item | None = None  # the last row of the runs streamed so far
+    ym_arrival = 0
+    last: Item | None = None
+    last_arrival = 0
     with tempfile.TemporaryDirectory(prefix="cellpulse-sort-", dir=temp_dir) as tmp:
         for item in items:
-            if item.arrival_ms is None:
+            a = item.value.arrival_ms
+            if a is None:
                 yield item
                 continue
-            k = _key(item)
-            if yielded_max is not None and k < yielded_max:
+            if yielded_max is not None and (
+                    a < ym_arrival or (a == ym_arrival and _key(item) < _key(yielded_max))):
                 raise OrderError(
                     f"input #{item.source + 1} row {item.row + 1} arrived "
                     f"({item.arrival_ms} ms) before rows already replayed; the inputs are not "
                     "in arrival order: pass --sort to sort them first"
                 )
-            if last is not None and k < last:
+            if last is not None and (
+                    a < last_arrival or (a == last_arrival and _key(item) < _key(last))):
                 streaming = False
-            last = k
+            last = item
+            last_arrival = a
             run.append(item)
             if len(run) >= run_rows:
                 if streaming:
                     yield from run
-                    yielded_max = k
+                    yielded_max = item
+                    ym_arrival = a
                 else:
                     run.sort(key=_key)
                     runs.append(_spill(run, Path(tmp), len(runs)))

@@ -36,6 +36,10 @@ class TableWriter:
     removes it, so a failed run never leaves a partial training set behind.
     """
 
+    # Rows wait as dicts only in small groups, then as Arrow columns until a chunk is full:
+    # a wide training-set row takes ~20x less memory as columns than as a dict.
+    ROWS_AS_DICTS = 512
+
     def __init__(self, path: str | Path, schema: pa.Schema, fmt: str = "parquet",
                  chunk_rows: int = 8192) -> None:
         self.final = Path(path)
@@ -45,6 +49,8 @@ class TableWriter:
         self.fmt = fmt
         self.chunk_rows = chunk_rows
         self._rows: list[Mapping[str, Any]] = []
+        self._batches: list[pa.RecordBatch] = []
+        self._pending = 0  # rows in _batches
         self.count = 0
         self._writer: pq.ParquetWriter | pacsv.CSVWriter
         if fmt == "parquet":
@@ -54,8 +60,16 @@ class TableWriter:
 
     def write(self, row: Mapping[str, Any]) -> None:
         self._rows.append(row)
-        if len(self._rows) >= self.chunk_rows:
-            self.flush()
+        if len(self._rows) >= self.ROWS_AS_DICTS:
+            self._columns()
+            if self._pending >= self.chunk_rows:
+                self.flush()
+
+    def _columns(self) -> None:
+        if self._rows:
+            self._batches.append(pa.RecordBatch.from_pylist(self._rows, schema=self.schema))
+            self._pending += len(self._rows)
+            self._rows = []
 
     def write_table(self, table: pa.Table) -> None:
         self.flush()
@@ -63,10 +77,12 @@ class TableWriter:
         self.count += table.num_rows
 
     def flush(self) -> None:
-        if self._rows:
-            self._writer.write_table(pa.Table.from_pylist(self._rows, schema=self.schema))
-            self.count += len(self._rows)
-            self._rows = []
+        self._columns()
+        if self._batches:
+            self._writer.write_table(pa.Table.from_batches(self._batches, schema=self.schema))
+            self.count += self._pending
+            self._batches = []
+            self._pending = 0
 
     def close(self) -> None:
         self.flush()

@@ -220,7 +220,7 @@ def _decode_line(raw: bytes, delay_ms: int | None) -> Fix | Rejection:
 
 
 def iter_file(path: str | Path, source: int = 0, assume_delay_s: float | None = None,
-              batch_rows: int = 65_536) -> Iterator[Item]:
+              batch_rows: int = 16_384) -> Iterator[Item]:
     """All rows of one recorded file, decoded, in file order."""
     p = Path(path)
     if not p.exists():
