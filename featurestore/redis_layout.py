@@ -165,12 +165,14 @@ def encode_state(state: VehicleState, *, with_recent: bool = True) -> str:
     offsets back from ``event_ms``). History logs leave ``recent`` out: it only serves the
     engine's duplicate check, never a lookup. About a third of the size of the field-named
     form, and cheaper to build."""
+    if not with_recent:  # the same array with an empty ``recent``, built in C
+        return orjson.dumps(state[:10] + ((), state[11]), default=tuple).decode()
     t = state.trip
     ev = state.event_ms
     return orjson.dumps([
         state.vehicle_id, ev, state.arrival_ms, state.seen_ms, state.lat, state.lon,
         state.cell, state.status, state.speed_mps, state.bearings,
-        [ev - r for r in state.recent] if with_recent else (),
+        [ev - r for r in state.recent],
         None if t is None else tuple(t),
     ]).decode()
 
