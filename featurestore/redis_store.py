@@ -115,7 +115,7 @@ return ops
 # caller, in Python integers).
 READ_LUA = """
 local unpack = table.unpack or unpack
-local find, sub, byte, match = string.find, string.sub, string.byte, string.match
+local find, sub, match = string.find, string.sub, string.match
 local gmatch = string.gmatch
 local concat = table.concat
 local t = tonumber(ARGV[1])
@@ -125,14 +125,8 @@ local req = ARGV[2]
 -- a read at or after the watermark, the live "now", needs no log.
 local wm = redis.call('HGET', ARGV[3], 'wm')
 local logs = wm and t < tonumber(wm)
-local COL = {[102] = 1, [112] = 2, [100] = 3}  -- counter field prefix f, p, d -> column
-local BUCKET = {}  -- counter field name -> its bucket (a number)
-local BTEXT = {}  -- bucket -> its text, as in the field names
+local NAMES = {}  -- bucket -> its counter fields f, p, d and its text
 local DAYS = {}  -- 'lo:hi' -> the route fields of those days
--- Same-width decimal numbers compare as text like numbers: a cheap first test of a counter
--- field's bucket (the exact one follows), used where the collation agrees on digits.
-local textual = ('0' < '1') and ('1' < '2') and ('2' < '3') and ('3' < '4') and ('4' < '5')
-  and ('5' < '6') and ('6' < '7') and ('7' < '8') and ('8' < '9')
 local out = {}
 local n = #req
 local s = 1
@@ -169,59 +163,60 @@ while s <= n do
     out[#out + 1] = st
   elseif kind == 'C' then
     local lo, hi = tonumber(a[2]), tonumber(a[3])
-    local quick = textual and #a[2] == #a[3]
-    local lows = {'f' .. a[2], 'p' .. a[2], 'd' .. a[2]}
-    local highs = {'f' .. a[3], 'p' .. a[3], 'd' .. a[3]}
-    local got, order = {}, {}
+    local H = {}  -- the blocks' counters by field name
+    local any = false
     for k = 5, #a do
       local h = redis.call('HGETALL', a[k])
-      for j = 1, #h, 2 do
-        local name = h[j]
-        local c = COL[byte(name, 1)]
-        if c and (not quick or (name >= lows[c] and name <= highs[c])) then
-          local b = BUCKET[name]
-          if not b then
-            b = tonumber(sub(name, 2))
-            BUCKET[name] = b
-            if not BTEXT[b] then BTEXT[b] = sub(name, 2) end
-          end
-          if b >= lo and b <= hi then
-            local row = got[b]
-            if not row then
-              row = {'0', '0', '0'}
-              got[b] = row
-              order[#order + 1] = b
-            end
-            row[c] = h[j + 1]  -- one field per bucket and column: no sum needed
-          end
-        end
-      end
-    end
-    if logs and a[4] ~= '' and #order > 0 then
-      local log = redis.call('ZRANGEBYSCORE', a[4], after, '+inf')
-      for j = 1, #log do  -- groups scored after T: their entries that arrived after T
-        for arr, b, f, pk, d in gmatch(log[j], '\\29(%d+)|(%d+)|(%d+)|(%d+)|(%d+)') do
-          b = tonumber(b)
-          local row = got[b]
-          if row and b >= lo and b <= hi and tonumber(arr) > t then
-            row[1] = tostring(tonumber(row[1]) - tonumber(f))
-            row[2] = tostring(tonumber(row[2]) - tonumber(pk))
-            row[3] = tostring(tonumber(row[3]) - tonumber(d))
-          end
-        end
-      end
+      for j = 1, #h, 2 do H[h[j]] = h[j + 1] end
+      if h[1] then any = true end
     end
     local parts = {}
-    local m = 0
-    for j = 1, #order do
-      local b = order[j]
-      local r = got[b]
-      if r[1] ~= '0' or r[2] ~= '0' or r[3] ~= '0' then
-        parts[m + 1] = BTEXT[b]
-        parts[m + 2] = r[1]
-        parts[m + 3] = r[2]
-        parts[m + 4] = r[3]
-        m = m + 4
+    if any then
+      local minus = nil  -- bucket -> the increments logged after T
+      if logs and a[4] ~= '' then
+        local log = redis.call('ZRANGEBYSCORE', a[4], after, '+inf')
+        for j = 1, #log do  -- groups scored after T: their entries that arrived after T
+          for arr, b, f, pk, d in gmatch(log[j], '\\29(%d+)|(%d+)|(%d+)|(%d+)|(%d+)') do
+            b = tonumber(b)
+            if b >= lo and b <= hi and tonumber(arr) > t then
+              minus = minus or {}
+              local x = minus[b]
+              if not x then
+                x = {0, 0, 0}
+                minus[b] = x
+              end
+              x[1] = x[1] + tonumber(f)
+              x[2] = x[2] + tonumber(pk)
+              x[3] = x[3] + tonumber(d)
+            end
+          end
+        end
+      end
+      local m = 0
+      for b = lo, hi do
+        local nm = NAMES[b]
+        if not nm then
+          local text = tostring(b)
+          nm = {'f' .. text, 'p' .. text, 'd' .. text, text}
+          NAMES[b] = nm
+        end
+        local f, pk, d = H[nm[1]], H[nm[2]], H[nm[3]]
+        if f or pk or d then
+          f, pk, d = f or '0', pk or '0', d or '0'
+          local x = minus and minus[b]
+          if x then
+            f = tostring(tonumber(f) - x[1])
+            pk = tostring(tonumber(pk) - x[2])
+            d = tostring(tonumber(d) - x[3])
+          end
+          if f ~= '0' or pk ~= '0' or d ~= '0' then
+            parts[m + 1] = nm[4]
+            parts[m + 2] = f
+            parts[m + 3] = pk
+            parts[m + 4] = d
+            m = m + 4
+          end
+        end
       end
     end
     out[#out + 1] = concat(parts, '\\31')
