@@ -301,7 +301,7 @@ def records(draw: Any) -> tuple[bytes | None, bytes, int | None]:
 
 # --- the properties ---------------------------------------------------------------------------
 
-FAST = settings(max_examples=400, suppress_health_check=[HealthCheck.too_slow,
+FAST = settings(max_examples=300, suppress_health_check=[HealthCheck.too_slow,
                                                          HealthCheck.data_too_large])
 
 
