@@ -6,9 +6,11 @@ before any later row, so each answer holds exactly what was known at T.
 
 from __future__ import annotations
 
+import gc
 import heapq
 import itertools
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from itertools import islice
 
@@ -34,6 +36,26 @@ class Query:
 
 
 DeadLetterSink = Callable[[Item, Rejection], None]
+
+FULL_COLLECTION_EVERY = 1000  # younger collections per full one while replaying (CPython: 10)
+
+
+@contextmanager
+def fewer_full_collections() -> Iterator[None]:
+    """Run full (oldest-generation) garbage collections 100x less often, then restore.
+
+    Replay keeps a few hundred thousand rows alive in its ordering buffer and batches, and
+    every full collection walks all of them: at CPython's default that is ~35 full
+    collections per million fixes, a tenth of replay's time. Replay's objects form no
+    reference cycles (reference counting frees them), so fewer full passes free the same
+    memory; the youngest generations are collected as usual.
+    """
+    old = gc.get_threshold()
+    gc.set_threshold(old[0], old[1], max(old[2], FULL_COLLECTION_EVERY))
+    try:
+        yield
+    finally:
+        gc.set_threshold(*old)
 
 
 class ReplaySession:
@@ -93,6 +115,10 @@ class ReplaySession:
 
     def run(self, items: Iterable[Item], progress: Callable[[int], None] | None = None) -> None:
         """Feed ordered rows through the engine, answering queries as time passes them."""
+        with fewer_full_collections():
+            self._run(items, progress)
+
+    def _run(self, items: Iterable[Item], progress: Callable[[int], None] | None) -> None:
         batch: list[Item] = []
         for item in items:
             a = item.arrival_ms
