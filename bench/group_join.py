@@ -162,8 +162,7 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="skip the default 45 s session")
     args = ap.parse_args()
 
-    sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "tests"))
-    from servers import KafkaBroker, create_topic
+    from bench.servers import KafkaBroker, create_topic
 
     broker = None
     bootstrap = args.bootstrap

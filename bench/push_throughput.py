@@ -12,8 +12,6 @@ goes to a fresh 8-partition topic at full speed (--speed max). Not a test.
 from __future__ import annotations
 
 import argparse
-import os
-import sys
 import tempfile
 import time
 import uuid
@@ -36,8 +34,7 @@ def main() -> None:
     ap.add_argument("--hours", type=float, default=24.0)
     ap.add_argument("--seed", type=int, default=7)
     args = ap.parse_args()
-    sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "tests"))
-    from servers import KafkaBroker
+    from bench.servers import KafkaBroker
 
     with tempfile.TemporaryDirectory() as tmp, KafkaBroker() as broker:
         day = Path(tmp) / "day.jsonl"
