@@ -14,8 +14,8 @@ then times each lookup as of the watermark (what "now" is live):
 - floor: one bare ``HMGET`` round trip of as many fields as the answer has values, on the same
   server with the same client library: what a store of precomputed vectors would at least cost.
 
-Cases: one vehicle (vehicle and trip families), one cell (with its ring), one route, and mixed
-batches of 100 and 1,000 keys (40 % vehicles, 40 % cells, 20 % routes, distinct where the fleet
+Cases: one vehicle (vehicle and trip families), one cell (with its ring), one route, a batch
+of 100 vehicles, and mixed batches of 100 and 1,000 keys (40 % vehicles, 40 % cells, 20 % routes, distinct where the fleet
 allows). The three paths take turns call by call, so each sees the same background. Each case
 runs twice: idle, then while a separate process applies the rest of the day and the next one to
 the same store through the engine at a steady rate (decode, engine, one atomic apply per batch:
@@ -103,6 +103,7 @@ def cases(sizes: Sizes) -> list[Case]:
         Case("1 vehicle", 1, 0, 0, sizes.repeat_one, one),
         Case("1 cell (with its ring)", 0, 1, 0, sizes.repeat_one, one),
         Case("1 route", 0, 0, 1, sizes.repeat_one, one),
+        Case("100 vehicles", 100, 0, 0, sizes.repeat_100, {"client": 5.0, "HTTP": 5.0}),
         Case("100 mixed keys (40 v, 40 c, 20 r)", 40, 40, 20, sizes.repeat_100,
              {"client": 5.0, "HTTP": 5.0}),
         Case("1,000 mixed keys (400 v, 400 c, 200 r)", 400, 400, 200, sizes.repeat_1000, {}),
