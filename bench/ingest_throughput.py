@@ -341,12 +341,14 @@ def main() -> None:
     ap.add_argument("--data-dir", help="keep the generated day here")
     ap.add_argument("--profile", metavar="FILE",
                     help="instead: profile one consumer-loop run (first client, ~500 records "
-                         "per batch, history 900 s) with pyinstrument into FILE")
+                         "per batch) with pyinstrument into FILE")
+    ap.add_argument("--history", type=float, default=900.0,
+                    help="history of the profiled run, seconds (default 900)")
     args = ap.parse_args()
     opts = replace(BenchOptions(), quick=args.quick, seed=args.seed, data_dir=args.data_dir,
                    kafka_clients=tuple(c.strip() for c in args.clients.split(",") if c.strip()))
     if args.profile:
-        profile(opts, args.profile)
+        profile(opts, args.profile, args.history)
         return
     figures = run(opts, BenchEnv())
     print(f"{'what':74} {'value':>10} {'floor':>10} {'ratio':>6} {'met':>4}")
@@ -355,7 +357,7 @@ def main() -> None:
         print(f"{f.what:74} {f.value:10,.0f} {f.floor or 0:10,.0f} {f.ratio or 0:6.2f} {met:>4}")
 
 
-def profile(opts: BenchOptions, out: str) -> None:
+def profile(opts: BenchOptions, out: str, history_s: float = 900.0) -> None:
     """One consumer-loop run under pyinstrument (``pip install pyinstrument``)."""
     from bench.servers import KafkaBroker, RedisServer
 
@@ -372,7 +374,7 @@ def profile(opts: BenchOptions, out: str) -> None:
             _push_batched(broker.bootstrap, topic, records, MAIN_BATCH)
         else:
             _push_plain(broker.bootstrap, topic, records)
-        rate = consume(client, broker.bootstrap, topic, redis.url, 900.0, len(records),
+        rate = consume(client, broker.bootstrap, topic, redis.url, history_s, len(records),
                        profile=out)
         print(f"{client}: {rate:,.0f} fixes/s under the profiler; profile in {out}")
 
