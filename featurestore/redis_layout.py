@@ -313,34 +313,15 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
         log_ttl = layout.log_ttl_s
         # one member per key and batch (a group): the batch id, then per fix GS + its entry;
         # scored by the group's latest arrival (see the module docstring)
-        vgroups: dict[str, list[str]] = {}
-        vlast: dict[str, int] = {}
-        for arr, vid, before in delta.vehicle_log:
-            g = vgroups.get(vid)
-            if g is None:
-                g = vgroups[vid] = [batch_id]
-                vlast[vid] = arr
-            elif arr > vlast[vid]:
-                vlast[vid] = arr
-            g.append(f"{arr}|{_state_json(before, with_recent=False)}")
-        for vid, g in vgroups.items():
-            key = layout.vehicle_log(vid)
-            zadd.setdefault(key, []).extend((str(vlast[vid]), GROUP.join(g)))
-            ttl[key] = log_ttl
-        cgroups: dict[str, list[str]] = {}
-        clast: dict[str, int] = {}
-        for arr, cell, bucket, f, p, d in delta.cell_log:
-            g = cgroups.get(cell)
-            if g is None:
-                g = cgroups[cell] = [batch_id]
-                clast[cell] = arr
-            elif arr > clast[cell]:
-                clast[cell] = arr
-            g.append(f"{arr}|{bucket}|{f}|{p}|{d}")
-        for cell, g in cgroups.items():
-            key = layout.cell_log(cell)
-            zadd.setdefault(key, []).extend((str(clast[cell]), GROUP.join(g)))
-            ttl[key] = log_ttl
+        vlog = ((layout.vehicle_log(vid), arr,
+                 f"{arr}|{_state_json(before, with_recent=False)}")
+                for arr, vid, before in delta.vehicle_log)
+        clog = ((layout.cell_log(cell), arr, f"{arr}|{bucket}|{f}|{p}|{d}")
+                for arr, cell, bucket, f, p, d in delta.cell_log)
+        for entries in (vlog, clog):
+            for key, (last, group) in _log_groups(entries, batch_id).items():
+                zadd.setdefault(key, []).extend((str(last), GROUP.join(group)))
+                ttl[key] = log_ttl
         for i, (arr, o, dd, h, day, dur) in enumerate(delta.route_log):
             key = layout.route_log((o, dd, h))
             zadd.setdefault(key, []).extend((str(arr), f"{arr}|{batch_id}.{i}|{day}|{dur}"))
@@ -373,6 +354,22 @@ def delta_ops(delta: Delta, layout: Layout, batch_id: str) -> tuple[list[str], l
         if span.last_arrival_ms is not None:
             ops.append(("M", layout.arrivals, part, str(span.last_arrival_ms)))
     return checks, ops
+
+
+def _log_groups(entries: Iterable[tuple[str, int, str]], batch_id: str
+                ) -> dict[str, tuple[int, list[str]]]:
+    """Log entries ``(key, arrival, text)`` gathered per key, in order, behind the batch id;
+    with each key's latest arrival (the group's score)."""
+    groups: dict[str, tuple[int, list[str]]] = {}
+    for key, arr, text in entries:
+        got = groups.get(key)
+        if got is None:
+            groups[key] = (arr, [batch_id, text])
+        else:
+            got[1].append(text)
+            if arr > got[0]:
+                groups[key] = (arr, got[1])
+    return groups
 
 
 def _vehicle_chains(delta: Delta) -> dict[str, list[tuple[int, VehicleState | None,
