@@ -14,14 +14,15 @@ then times each lookup as of the watermark (what "now" is live):
 - floor: one bare ``HMGET`` round trip of as many fields as the answer has values, on the same
   server with the same client library: what a store of precomputed vectors would at least cost.
 
-Cases: one vehicle (vehicle and trip families), one cell (with its ring), one route, a batch
-of 100 vehicles, and mixed batches of 100 and 1,000 keys (40 % vehicles, 40 % cells, 20 % routes, distinct where the fleet
-allows). The three paths take turns call by call, so each sees the same background. Each case
-runs twice: idle, then while a separate process applies the rest of the day and the next one to
-the same store through the engine at a steady rate (decode, engine, one atomic apply per batch:
-what a consumer does; ``--load-rate`` fixes/s), reading as of its moving watermark. Figures:
-p50, p99 and p99.9 per case, path and run; the p99 carries the issue's targets. Every process
-shares the machine's cores. Not a test: figures vary by machine and run.
+Cases: one vehicle (vehicle and trip families), one cell (with its ring), one route, a batch of
+100 vehicles, and mixed batches of 100 and 1,000 keys (40 % vehicles, 40 % cells, 20 % routes,
+distinct where the fleet allows). The three paths take turns call by call, so each sees the
+same background. Each case runs twice: idle, then while a separate process applies the rest of
+the day and the next one to the same store through the engine at a steady rate (decode, engine,
+one atomic apply per batch: what a consumer does; ``--load-rate`` fixes/s), reading as of its
+moving watermark. Figures: p50, p99 and p99.9 per case, path and run; the p99 carries the
+issue's targets. Every process shares the machine's cores. Not a test: figures vary by machine
+and run.
 """
 
 from __future__ import annotations
