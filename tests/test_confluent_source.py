@@ -6,16 +6,12 @@ test_ingest_bad_input.py)."""
 from __future__ import annotations
 
 import logging
-import signal
-import subprocess
 import sys
 import time
 import uuid
 from collections import Counter
-from pathlib import Path
 
 import pytest
-from servers import free_port
 
 from ingest.confluent_source import (
     FETCH_TUNING,
@@ -339,30 +335,6 @@ def test_a_missing_topic_waits_and_a_missing_dead_letter_topic_is_readable(kafka
     with pytest.raises(DeadLetterError, match="not found on .*--dead-letter-topic"):
         ConfluentDeadLetters(kafka_broker.bootstrap, f"absent-{uuid.uuid4().hex[:6]}",
                              timeout_s=5)
-
-
-@needs_confluent
-def test_an_unreachable_broker_is_named_and_retried_until_sigterm(tmp_path: Path) -> None:
-    port = free_port()  # nothing listens there
-    log = tmp_path / "err.log"
-    with open(log, "wb") as fh:
-        proc = subprocess.Popen([*CLI, "ingest", "--kafka-client", "confluent", "--bootstrap",
-                                 f"127.0.0.1:{port}", "--redis-url", "memory://"],
-                                stdout=subprocess.DEVNULL, stderr=fh)
-    try:
-        deadline = time.monotonic() + 30
-        while time.monotonic() < deadline and "unreachable" not in log.read_text():
-            time.sleep(0.05)
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=30) == 0
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
-    text = log.read_text()
-    assert f"broker 127.0.0.1:{port} unreachable" in text
-    assert "trying again in" in text
-    assert "SIGTERM received" in text
 
 
 @needs_confluent

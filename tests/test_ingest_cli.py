@@ -14,7 +14,7 @@ from pathlib import Path
 import orjson
 import pyarrow.parquet as pq
 import pytest
-from ingest_support import replayed
+from ingest_support import KAFKA_CLIENTS, replayed
 from servers import free_port
 
 from featurestore.config import EngineConfig
@@ -114,16 +114,23 @@ def test_a_bad_redis_url_is_one_readable_line() -> None:
     assert "--redis-url" in got.stderr.decode()
 
 
-def test_an_unreachable_broker_is_named_and_retried_until_sigterm(tmp_path: Path) -> None:
+# what each client's retry log says, and how many "unreachable" lines to wait for
+RETRY_TEXT = {"kafka-python": ("backoff", 2), "confluent": ("trying again in", 1)}
+
+
+@pytest.mark.parametrize("client", KAFKA_CLIENTS)
+def test_an_unreachable_broker_is_named_and_retried_until_sigterm(tmp_path: Path,
+                                                                 client: str) -> None:
     port = free_port()  # nothing listens there
     log = tmp_path / "err.log"
+    retry_text, lines = RETRY_TEXT[client]
     with open(log, "wb") as fh:
-        proc = subprocess.Popen([*CLI, "ingest", "--bootstrap", f"127.0.0.1:{port}",
-                                 "--redis-url", "memory://"], stdout=subprocess.DEVNULL,
-                                stderr=fh)
+        proc = subprocess.Popen([*CLI, "ingest", "--kafka-client", client, "--bootstrap",
+                                 f"127.0.0.1:{port}", "--redis-url", "memory://"],
+                                stdout=subprocess.DEVNULL, stderr=fh)
     try:
         deadline = time.monotonic() + 30
-        while time.monotonic() < deadline and log.read_text().count("unreachable") < 2:
+        while time.monotonic() < deadline and log.read_text().count("unreachable") < lines:
             time.sleep(0.05)
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=30) == 0
@@ -133,5 +140,5 @@ def test_an_unreachable_broker_is_named_and_retried_until_sigterm(tmp_path: Path
             proc.wait()
     text = log.read_text()
     assert f"broker 127.0.0.1:{port} unreachable" in text
-    assert "backoff" in text
+    assert retry_text in text
     assert "SIGTERM received" in text
