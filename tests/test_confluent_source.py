@@ -293,11 +293,14 @@ def test_group_member_reads_from_stored_offsets_with_true_end_offsets(kafka_brok
         while len(src.unpositioned()) < 2:
             assert src.poll(0.2, 100) == []
             assert time.monotonic() < deadline, "no assignment"
-        src.seek({f"{topic}:0": 40})  # partition 1: nothing stored, from the beginning
+        stored = {f"{topic}:0": 40}  # partition 1: nothing stored, from the beginning
+        src.seek(stored)
         got = []
         while len(got) < 60:
+            if src.unpositioned():  # librdkafka may refuse a seek until the partition starts;
+                src.seek(stored)    # the consumer loop seeks again in that case, and so here
             got += src.poll(0.5, 1000)
-            assert time.monotonic() < deadline, len(got)
+            assert time.monotonic() < deadline, (len(got), sorted(src.unpositioned()))
         by_part = Counter(r.partition for r in got)
         assert by_part == {f"{topic}:0": 10, f"{topic}:1": 50}
         assert min(r.offset for r in got if r.partition == f"{topic}:0") == 40
