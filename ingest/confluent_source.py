@@ -20,7 +20,6 @@ lock.
 from __future__ import annotations
 
 import logging
-import os
 import time
 from collections.abc import Callable, Collection, Mapping
 from types import ModuleType
@@ -30,11 +29,11 @@ import orjson
 
 from ingest.records import SourceRecord
 from ingest.sources import (
-    START_POLICIES,
     Backoff,
     KafkaSettings,
     SourceError,
     SourceUnavailable,
+    TopicConsumer,
     partition_name,
 )
 
@@ -176,7 +175,7 @@ def _exc_text(exc: BaseException) -> str:
     return str(exc) or type(exc).__name__
 
 
-class ConfluentSource:
+class ConfluentSource(TopicConsumer):
     """A confluent-kafka (librdkafka) consumer over one topic; see the module doc and
     ``KafkaSource``, whose behaviour it keeps. ``consumer_factory(config)`` builds the consumer
     (``confluent_kafka.Consumer`` by default; tests pass fakes)."""
@@ -189,17 +188,9 @@ class ConfluentSource:
                  should_stop: Callable[[], bool] = lambda: False,
                  backoff: Backoff | None = None,
                  consumer_factory: Callable[[dict[str, Any]], Any] | None = None) -> None:
-        if start not in START_POLICIES:
-            raise ValueError(f"start must be one of {START_POLICIES}, not {start!r}")
+        super().__init__(bootstrap, topic, group, partitions, start, settings, client_id)
         ck = load_confluent() if consumer_factory is None else None
         self._ck = ck
-        self.bootstrap = bootstrap
-        self.topic = topic
-        self.group = group
-        self.static = partitions is not None
-        self.start = start
-        self.settings = settings or KafkaSettings()
-        self.client_id = client_id or f"cellpulse-ingest-{os.getpid()}"
         self.watch = ConfluentWatch(bootstrap, self.settings.reconnect_backoff_max_ms / 1000)
         self._pending: set[int] = set()  # assigned partitions waiting for a seek (paused)
         self._next: dict[int, int] = {}  # partition -> next offset to hand out

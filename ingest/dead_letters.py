@@ -67,6 +67,12 @@ class DeadLetterSink(Protocol):
         ...
 
 
+def _topic_missing(topic: str, bootstrap: str, why: str) -> DeadLetterError:
+    """The start-up error of both Kafka clients when the dead-letter topic is not there."""
+    return DeadLetterError(f"dead-letter topic {topic!r} not found on {bootstrap} ({why}): "
+                           "create it, or name another with --dead-letter-topic")
+
+
 class KafkaDeadLetters:
     """Dead letters to a Kafka topic (acks from all in-sync replicas, flushed per batch)."""
 
@@ -101,9 +107,7 @@ class KafkaDeadLetters:
             why = "no partitions"
         if not found:
             self._producer.close(timeout=1)
-            raise DeadLetterError(
-                f"dead-letter topic {self.topic!r} not found on {bootstrap} ({why}): create it, "
-                f"or name another with --dead-letter-topic")
+            raise _topic_missing(self.topic, bootstrap, why)
 
     def send(self, letters: Sequence[DeadLetter]) -> None:
         if not letters:
@@ -196,9 +200,7 @@ class ConfluentDeadLetters:
         if not found:
             self._producer.flush(0)
             self._producer = None  # destroys librdkafka's handle (threads, connections) now
-            raise DeadLetterError(
-                f"dead-letter topic {self.topic!r} not found on {bootstrap} ({why}): create it, "
-                f"or name another with --dead-letter-topic")
+            raise _topic_missing(self.topic, bootstrap, why)
 
     def _produce(self, key: bytes | None, value: bytes, headers: list[tuple[str, bytes]],
                  on_delivery: Any) -> None:

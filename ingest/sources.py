@@ -136,7 +136,24 @@ def _listener(source: KafkaSource) -> Any:
     return Listener()
 
 
-class KafkaSource:
+class TopicConsumer:
+    """What both Kafka clients' sources hold: the topic, group, start policy and settings."""
+
+    def __init__(self, bootstrap: str, topic: str, group: str | None,
+                 partitions: Collection[int] | None, start: str,
+                 settings: KafkaSettings | None, client_id: str | None) -> None:
+        if start not in START_POLICIES:
+            raise ValueError(f"start must be one of {START_POLICIES}, not {start!r}")
+        self.bootstrap = bootstrap
+        self.topic = topic
+        self.group = group
+        self.static = partitions is not None
+        self.start = start
+        self.settings = settings or KafkaSettings()
+        self.client_id = client_id or f"cellpulse-ingest-{os.getpid()}"
+
+
+class KafkaSource(TopicConsumer):
     """A kafka-python consumer over one topic.
 
     With ``partitions`` None it joins the consumer group ``group`` (``subscribe`` with a
@@ -153,15 +170,7 @@ class KafkaSource:
                  settings: KafkaSettings | None = None, client_id: str | None = None,
                  should_stop: Callable[[], bool] = lambda: False,
                  backoff: Backoff | None = None) -> None:
-        if start not in START_POLICIES:
-            raise ValueError(f"start must be one of {START_POLICIES}, not {start!r}")
-        self.bootstrap = bootstrap
-        self.topic = topic
-        self.group = group
-        self.static = partitions is not None
-        self.start = start
-        self.settings = settings or KafkaSettings()
-        self.client_id = client_id or f"cellpulse-ingest-{os.getpid()}"
+        super().__init__(bootstrap, topic, group, partitions, start, settings, client_id)
         self._lock = threading.Lock()
         self._pending: set[Any] = set()  # TopicPartitions waiting for a seek (paused)
         self._next: dict[Any, int] = {}  # TopicPartition -> next offset to hand out
